@@ -1,0 +1,1 @@
+"""Reading a finished run: curves, baselines, reports and exports."""

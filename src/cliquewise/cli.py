@@ -1,0 +1,246 @@
+"""The ``cliquewise`` command line: a thin layer over the pipeline and the API.
+
+Errors the user can act on print one line on stderr and exit with status 2 (1 for
+anything unexpected); ``--debug`` shows the traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import logging
+import sys
+from pathlib import Path
+
+from cliquewise import __version__
+
+EXIT_USER = 2
+EXIT_BUG = 1
+
+
+def _add_engine(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("engine")
+    g.add_argument("--scheduler", metavar="ADDRESS", help="join a running dask cluster, e.g. tcp://10.0.0.5:8786")
+    g.add_argument("--workers", type=int, metavar="N", help="start N local worker processes (default: threads in this process)")
+    g.add_argument("--threads", type=int, metavar="N", help="threads per worker (default: all cores)")
+    g.add_argument("--memory-limit", metavar="SIZE", help="memory per worker process, e.g. 2GB (spills to disk beyond it)")
+    g.add_argument("--dashboard", metavar="HOST:PORT", help="serve the dask dashboard (binds 127.0.0.1 unless a host is given)")
+
+
+def _add_run_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("pipeline", nargs="?", help="a pipeline file (TOML); options below override it")
+    p.add_argument("--edges", metavar="PATH_OR_GLOB", help="the export: Parquet or CSV file, folder or glob")
+    p.add_argument("--run-dir", metavar="DIR", help="where stages keep their results and checkpoints")
+    g = p.add_argument_group("input")
+    g.add_argument("--source", metavar="COL", help="column of the first person (default source)")
+    g.add_argument("--target", metavar="COL", help="column of the second person (default target)")
+    g.add_argument("--weight", metavar="COL", help="column of counts (default weight); '' counts rows")
+    g.add_argument("--time", metavar="COL", help="time column, for --since/--until on an event log")
+    g.add_argument("--since", metavar="WHEN", help="keep rows with time >= WHEN (ISO time or number)")
+    g.add_argument("--until", metavar="WHEN", help="keep rows with time < WHEN")
+    g.add_argument("--merge", choices=["sum", "max", "min"], help="how duplicate and reciprocal rows combine (default sum)")
+    g.add_argument("--on-invalid", choices=["error", "drop"], help="NaN, infinite, negative or non-numeric weights: stop (default) or drop and count")
+    g = p.add_argument_group("candidates")
+    g.add_argument("--levels", metavar="all|N|LIST", help="weight thresholds: every distinct weight (default), N quantile levels, or a list")
+    g.add_argument("--max-cliques", type=int, metavar="N", help="blow-up guard: cliques allowed per work unit")
+    g.add_argument("--max-seconds", type=float, metavar="S", help="blow-up guard: seconds allowed per work unit")
+    g = p.add_argument_group("fit")
+    g.add_argument("--tol", type=float, help="stop when the log-likelihood changes by less than this, relatively")
+    g.add_argument("--max-iter", type=int, help="EM iterations at most")
+    g.add_argument("--no-accelerate", action="store_true", help="plain EM steps (no SQUAREM)")
+    g.add_argument("--prune", type=float, metavar="W", help="drop groups whose expected weight falls below W")
+    _add_engine(p)
+
+
+def _settings_from_args(args):
+    from cliquewise.config import Settings, load_pipeline, parse_levels
+
+    s = load_pipeline(args.pipeline) if args.pipeline else Settings()
+    i = s.input
+    if args.edges:
+        i.edges = args.edges
+    if args.run_dir:
+        s.run_dir = str(Path(args.run_dir).resolve())
+    for opt in ("source", "target", "time", "since", "until", "merge", "on_invalid"):
+        val = getattr(args, opt)
+        if val is not None:
+            setattr(i, opt, val)
+    if args.weight is not None:
+        i.weight = args.weight
+    c = s.candidates
+    if args.levels is not None:
+        c.levels = parse_levels(args.levels)
+    if args.max_cliques is not None:
+        c.max_cliques = args.max_cliques
+    if args.max_seconds is not None:
+        c.max_seconds = args.max_seconds
+    f = s.fit
+    if args.tol is not None:
+        f.tol = args.tol
+    if args.max_iter is not None:
+        f.max_iter = args.max_iter
+    if args.no_accelerate:
+        f.accelerate = False
+    if args.prune is not None:
+        f.prune = args.prune
+    _engine_from_args(s, args)
+    s.validate()
+    if not i.edges:
+        raise _UserError("no export given: pass --edges PATH_OR_GLOB or a pipeline file with [input] edges")
+    if not s.run_dir:
+        raise _UserError("no run directory given: pass --run-dir DIR or set run_dir in the pipeline file")
+    return s
+
+
+def _engine_from_args(s, args) -> None:
+    e = s.engine
+    if getattr(args, "scheduler", None):
+        e.scheduler = args.scheduler
+    if getattr(args, "workers", None) is not None:
+        e.workers = args.workers
+    if getattr(args, "threads", None) is not None:
+        e.threads = args.threads
+    if getattr(args, "memory_limit", None):
+        e.memory_limit = args.memory_limit
+    if getattr(args, "dashboard", None):
+        d = args.dashboard
+        e.dashboard = d if ":" in d else f"127.0.0.1:{d}"
+
+
+class _UserError(Exception):
+    pass
+
+
+# -- commands -----------------------------------------------------------------
+
+def cmd_run(args) -> int:
+    from cliquewise.pipeline import run_pipeline
+
+    settings = _settings_from_args(args)
+    return _run(settings, args)
+
+
+def cmd_resume(args) -> int:
+    from cliquewise.pipeline import load_settings
+
+    settings = load_settings(args.run_dir)
+    _engine_from_args(settings, args)
+    return _run(settings, args)
+
+
+def _run(settings, args) -> int:
+    from cliquewise.pipeline import run_pipeline
+
+    def on_stage(res):
+        prof = res.manifest.get("profile", {})
+        note = "up to date" if res.skipped else f"{prof.get('wall_seconds', 0):.1f} s, peak {_mb(prof.get('peak_rss_bytes', 0))}"
+        print(f"  {res.name:<10} {note}", file=sys.stderr)
+
+    print(f"run directory: {settings.run_dir}", file=sys.stderr)
+    run_pipeline(settings, on_stage=on_stage, progress=not args.quiet)
+    results = Path(settings.run_dir) / "results"
+    if results.exists():
+        print(f"results: {results}")
+    return 0
+
+
+def cmd_status(args) -> int:
+    from cliquewise.pipeline import stage_status
+
+    rows = stage_status(args.run_dir)
+    if args.json:
+        print(json.dumps(rows, indent=1))
+        return 0
+    print(f"{'stage':<10} {'state':<28} {'wall s':>8} {'peak RSS':>10}  counts")
+    for r in rows:
+        wall = f"{r['wall_seconds']:.2f}" if r["wall_seconds"] is not None else "-"
+        rss = _mb(r["peak_rss_bytes"]) if r["peak_rss_bytes"] else "-"
+        counts = ", ".join(f"{k}={v}" for k, v in list(r["counts"].items())[:5])
+        print(f"{r['stage']:<10} {r['state']:<28} {wall:>8} {rss:>10}  {counts}")
+    return 0
+
+
+def cmd_simulate(args) -> int:
+    from cliquewise.simulate import simulate
+
+    summary = simulate(args.out, nodes=args.nodes, seed=args.seed, labels=args.labels,
+                       intensity=args.intensity, levels=args.levels, events=args.events)
+    print(json.dumps(summary, indent=1, default=str))
+    return 0
+
+
+def _mb(n) -> str:
+    return f"{(n or 0) / 2**20:.0f} MB"
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="cliquewise", description="Overlapping weighted groups in large interaction networks.")
+    p.add_argument("--version", action="version", version=f"cliquewise {__version__}")
+    p.add_argument("--debug", action="store_true", help="show tracebacks and debug logging")
+    p.add_argument("--quiet", action="store_true", help="no progress bars")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+
+    r = sub.add_parser("run", help="run the whole job on an export")
+    _add_run_options(r)
+    r.set_defaults(func=cmd_run)
+
+    r = sub.add_parser("resume", help="continue a run from its checkpoints")
+    r.add_argument("run_dir")
+    _add_engine(r)
+    r.set_defaults(func=cmd_resume)
+
+    r = sub.add_parser("status", help="each stage's state, time, memory and counts")
+    r.add_argument("run_dir")
+    r.add_argument("--json", action="store_true")
+    r.set_defaults(func=cmd_status)
+
+    r = sub.add_parser("simulate", help="write an invented export with planted groups")
+    r.add_argument("--out", required=True, metavar="DIR")
+    r.add_argument("--nodes", type=int, default=10_000)
+    r.add_argument("--seed", type=int, default=0)
+    r.add_argument("--labels", choices=["str", "int"], default="str")
+    r.add_argument("--intensity", choices=["lognormal", "pareto"], default="lognormal")
+    r.add_argument("--levels", type=int, default=None, help="round intensities onto about this many values")
+    r.add_argument("--events", action="store_true", help="one row per interaction with a time column")
+    r.set_defaults(func=cmd_simulate)
+    return p
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    logging.basicConfig(level=logging.WARNING, format="%(levelname)s %(name)s: %(message)s")
+    logging.getLogger("cliquewise").setLevel(logging.DEBUG if args.debug else logging.WARNING)
+    if not getattr(args, "func", None):
+        parser.print_help()
+        return EXIT_USER
+    from cliquewise.config import ConfigError
+    from cliquewise.engine import EngineError
+    from cliquewise.stage import InputError
+    from cliquewise.store import StoreError
+
+    try:
+        return args.func(args)
+    except (InputError, ConfigError, StoreError, EngineError, _UserError) as exc:
+        if args.debug:
+            raise
+        print(f"cliquewise: error: {exc}", file=sys.stderr)
+        return EXIT_USER
+    except OSError as exc:
+        if args.debug:
+            raise
+        where = f" ({exc.filename})" if getattr(exc, "filename", None) else ""
+        print(f"cliquewise: error: {exc.strerror or exc}{where}", file=sys.stderr)
+        return EXIT_USER
+    except KeyboardInterrupt:
+        print("cliquewise: interrupted; 'cliquewise resume RUN_DIR' continues from the last checkpoint", file=sys.stderr)
+        return 130
+    except Exception as exc:  # noqa: BLE001
+        if args.debug:
+            raise
+        print(f"cliquewise: internal error: {type(exc).__name__}: {exc} (rerun with --debug for details)", file=sys.stderr)
+        return EXIT_BUG
+
+
+if __name__ == "__main__":
+    sys.exit(main())

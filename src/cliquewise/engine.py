@@ -1,0 +1,230 @@
+"""Where stages run: an embedded dask cluster by default, or an existing one.
+
+``Engine`` wraps a ``dask.distributed.Client``. With no address it starts an
+in-process cluster sized to the machine (threads, so numba kernels compiled with
+``nogil=True`` run side by side and nothing is serialised). ``workers=N`` starts a
+LocalCluster of N worker processes instead, which is what ``memory_limit`` needs
+to mean anything; ``scheduler="tcp://HOST:PORT"`` joins a running cluster. The
+dashboard binds to 127.0.0.1 unless ``dashboard`` says otherwise.
+
+Stages use only :meth:`Engine.map` (run a function over items, with a progress
+bar, results in item order) and :meth:`Engine.submit`, so they run the same way
+on every engine.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import sys
+import threading
+import time
+from contextlib import contextmanager
+from dataclasses import dataclass
+from typing import Any, Callable, Iterable, Sequence
+
+import psutil
+
+
+@dataclass
+class EngineSettings:
+    scheduler: str | None = None  # tcp://host:port of an existing cluster
+    workers: int | None = None  # worker processes for a LocalCluster; None = in-process threads
+    threads: int | None = None  # threads per worker
+    memory_limit: str | None = None  # per worker, e.g. "2GB"
+    dashboard: str | None = None  # e.g. "127.0.0.1:8787"; None = no dashboard
+    progress: bool = True
+
+    def to_dict(self) -> dict:
+        return dict(self.__dict__)
+
+
+class EngineError(RuntimeError):
+    pass
+
+
+def _quiet_dask_logs() -> None:
+    for name in ("distributed", "distributed.worker", "distributed.scheduler", "distributed.nanny",
+                 "distributed.core", "distributed.http.proxy", "distributed.utils_perf"):
+        logging.getLogger(name).setLevel(logging.ERROR)
+
+
+class Engine:
+    """A dask client plus the few helpers the stages need."""
+
+    def __init__(self, settings: EngineSettings | None = None):
+        from dask.distributed import Client, LocalCluster
+
+        self.settings = s = settings or EngineSettings()
+        _quiet_dask_logs()
+        self._cluster = None
+        if s.scheduler:
+            try:
+                self.client = Client(s.scheduler, timeout="20s")
+            except (OSError, TimeoutError) as exc:
+                raise EngineError(f"cannot reach the dask scheduler at {s.scheduler}: {exc}") from exc
+        else:
+            ncores = os.cpu_count() or 1
+            dash = s.dashboard if s.dashboard else None
+            if s.workers:
+                threads = s.threads or max(1, ncores // s.workers)
+                self._cluster = LocalCluster(
+                    n_workers=s.workers, threads_per_worker=threads, processes=True,
+                    memory_limit=s.memory_limit or "auto", host="127.0.0.1",
+                    dashboard_address=dash, silence_logs=logging.ERROR,
+                )
+            else:
+                self._cluster = LocalCluster(
+                    n_workers=1, threads_per_worker=s.threads or ncores, processes=False,
+                    memory_limit=s.memory_limit or 0,
+                    dashboard_address=dash, silence_logs=logging.ERROR,
+                )
+            self.client = Client(self._cluster)
+        self.in_process = self._cluster is not None and not s.workers
+
+    # -- description ---------------------------------------------------------
+    def describe(self) -> dict:
+        info = self.client.scheduler_info()
+        workers = info.get("workers", {})
+        return {
+            "address": info.get("address"),
+            "workers": len(workers),
+            "threads": sum(w.get("nthreads", 0) for w in workers.values()),
+            "in_process": self.in_process,
+            "dashboard": self.client.dashboard_link if self.settings.dashboard else None,
+        }
+
+    def nthreads(self) -> int:
+        return max(1, sum(self.client.nthreads().values()))
+
+    # -- running -------------------------------------------------------------
+    def map(self, func: Callable, items: Sequence, *args, desc: str = "", pure: bool = False,
+            **kwargs) -> list:
+        """``[func(item, *args, **kwargs) for item in items]`` on the cluster, in order."""
+        from dask.distributed import as_completed
+
+        items = list(items)
+        if not items:
+            return []
+        futures = self.client.map(func, items, *[[a] * len(items) for a in args], pure=pure,
+                                  **kwargs) if args else self.client.map(func, items, pure=pure, **kwargs)
+        index = {f.key: i for i, f in enumerate(futures)}
+        results: list[Any] = [None] * len(items)
+        with progress_bar(len(items), desc, self.settings.progress) as bar:
+            try:
+                for fut in as_completed(futures):
+                    results[index[fut.key]] = fut.result()
+                    bar(1)
+            except BaseException:
+                self.client.cancel(futures)
+                raise
+        return results
+
+    def submit(self, func: Callable, *args, **kwargs):
+        return self.client.submit(func, *args, pure=False, **kwargs)
+
+    def scatter(self, data, broadcast: bool = True):
+        if self.in_process:
+            return data
+        return self.client.scatter(data, broadcast=broadcast)
+
+    def worker_rss(self) -> int:
+        """Sum of the resident memory of the worker processes (0 in-process)."""
+        if self.in_process:
+            return 0
+        try:
+            info = self.client.scheduler_info()["workers"]
+            return int(sum(w.get("metrics", {}).get("memory", 0) for w in info.values()))
+        except Exception:  # noqa: BLE001 - monitoring must never break a run
+            return 0
+
+    def close(self) -> None:
+        try:
+            self.client.close()
+        finally:
+            if self._cluster is not None:
+                self._cluster.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+
+# -- progress -----------------------------------------------------------------
+
+@contextmanager
+def progress_bar(total: int, desc: str, enabled: bool = True):
+    """A tqdm bar on stderr when it is a terminal (or forced); yields an ``update(n)``."""
+    if not enabled or not desc:
+        yield lambda n: None
+        return
+    from tqdm import tqdm
+
+    bar = tqdm(total=total, desc=desc, unit="task", file=sys.stderr, leave=False,
+               disable=None if not os.environ.get("CLIQUEWISE_PROGRESS") else False,
+               dynamic_ncols=True)
+    try:
+        yield bar.update
+    finally:
+        bar.close()
+
+
+# -- resource monitoring -------------------------------------------------------
+
+class ResourceMonitor:
+    """Samples resident memory of this process (and its workers) while a stage runs."""
+
+    def __init__(self, engine: Engine | None = None, interval: float = 0.05):
+        self.engine = engine
+        self.interval = interval
+        self.peak_driver = 0
+        self.peak_workers = 0
+        self._stop = threading.Event()
+        self._proc = psutil.Process()
+
+    def _sample(self):
+        try:
+            rss = self._proc.memory_info().rss
+        except psutil.Error:
+            rss = 0
+        self.peak_driver = max(self.peak_driver, rss)
+
+    def _run(self):
+        tick = 0
+        while not self._stop.wait(self.interval):
+            self._sample()
+            tick += 1
+            if self.engine is not None and not self.engine.in_process and tick % 10 == 0:
+                self.peak_workers = max(self.peak_workers, self.engine.worker_rss())
+
+    def __enter__(self):
+        self._t0 = time.perf_counter()
+        self._cpu0 = self._cpu_times()
+        self._sample()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+        self._thread.start()
+        return self
+
+    def _cpu_times(self) -> float:
+        t = self._proc.cpu_times()
+        return t.user + t.system
+
+    def __exit__(self, *exc):
+        self._stop.set()
+        self._thread.join()
+        self._sample()
+        if self.engine is not None and not self.engine.in_process:
+            self.peak_workers = max(self.peak_workers, self.engine.worker_rss())
+        self.wall = time.perf_counter() - self._t0
+        self.cpu = self._cpu_times() - self._cpu0
+
+    def as_dict(self, worker_cpu: float = 0.0) -> dict:
+        return {
+            "wall_seconds": round(self.wall, 4),
+            "cpu_seconds": round(self.cpu + worker_cpu, 4),
+            "peak_rss_bytes": int(self.peak_driver + self.peak_workers),
+            "peak_rss_driver_bytes": int(self.peak_driver),
+            "peak_rss_workers_bytes": int(self.peak_workers),
+        }

@@ -1,0 +1,175 @@
+"""Per-unit functions of the enumerate stage.
+
+* :func:`choose_levels` turns the ``levels`` setting and the weights into sorted
+  thresholds, and :func:`level_index` gives each edge the index of the highest
+  threshold at or below its weight.
+* :func:`build_graph` reads the edge store and writes the symmetric CSR (with per
+  entry level and edge index) as ``.npy`` files that every unit memory-maps.
+* :func:`enumerate_unit` lists the candidates first seen at the edges of one edge
+  block (the high-to-low sweep, see ``kernels/cliques.py``), under the blow-up
+  budget, and their ``level_min``.
+* :func:`build_incidence` turns the candidate lists into the edge -> candidate CSR
+  the fit reads.
+"""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+
+import numpy as np
+import pyarrow.parquet as pq
+
+from cliquewise.kernels.cliques import level_min, sweep_candidates
+from cliquewise.kernels.graph import csr_from_edges
+from cliquewise.kernels.incidence import incidence
+from cliquewise.store import load_npy, save_npy
+
+GRAPH_FILES = ("indptr", "nbr", "nlev", "eid", "u", "v", "lev", "weight")
+STATUS_TEXT = {1: "clique count", 2: "work", 3: "time"}
+
+
+def choose_levels(weights: np.ndarray, spec) -> np.ndarray:
+    """Sorted thresholds. The smallest weight is always a threshold, so every edge is covered.
+
+    ``"all"``: every distinct weight. An integer ``n``: ``n`` quantiles of the edge
+    weights (fewer when weights repeat). A list: those thresholds plus the minimum.
+    """
+    w = np.asarray(weights, np.float64)
+    if w.size == 0:
+        return np.empty(0, np.float64)
+    wmin = float(w.min())
+    if spec == "all":
+        return np.unique(w)
+    if isinstance(spec, int):
+        q = np.quantile(w, np.linspace(0.0, 1.0, spec, endpoint=False), method="lower")
+        return np.unique(np.concatenate([[wmin], q]))
+    levels = np.asarray(sorted(float(x) for x in spec), np.float64)
+    levels = levels[(levels > wmin) & (levels <= w.max())]
+    return np.unique(np.concatenate([[wmin], levels]))
+
+
+def level_index(weights: np.ndarray, levels: np.ndarray) -> np.ndarray:
+    """Index of the highest threshold <= each weight (int32)."""
+    return (np.searchsorted(levels, weights, side="right") - 1).astype(np.int32)
+
+
+def build_graph(edge_files: list, n_nodes: int, levels_spec, out: Path) -> dict:
+    """Read the edge store, choose levels, build the CSR; write ``.npy`` files into ``out``."""
+    t_cpu = time.thread_time()
+    us, vs, ws = [], [], []
+    for f in edge_files:
+        t = pq.read_table(f, columns=["u", "v", "weight"])
+        us.append(t.column("u").to_numpy())
+        vs.append(t.column("v").to_numpy())
+        ws.append(t.column("weight").to_numpy())
+    u = np.concatenate(us) if us else np.empty(0, np.int64)
+    v = np.concatenate(vs) if vs else np.empty(0, np.int64)
+    w = np.concatenate(ws) if ws else np.empty(0, np.float64)
+    del us, vs, ws
+    levels = choose_levels(w, levels_spec)
+    lev = level_index(w, levels)
+    indptr, nbr, nlev, eid = csr_from_edges(n_nodes, u, v, lev)
+    out.mkdir(parents=True, exist_ok=True)
+    for name, arr in zip(GRAPH_FILES, (indptr, nbr, nlev, eid, u, v, lev, w)):
+        save_npy(out / f"{name}.npy", arr)
+    save_npy(out / "levels.npy", levels)
+    return {"edges": int(len(u)), "levels": int(len(levels)), "cpu": time.thread_time() - t_cpu}
+
+
+def load_graph(folder: Path) -> dict:
+    return {name: load_npy(folder / f"{name}.npy", mmap=True) for name in GRAPH_FILES}
+
+
+def enumerate_unit(graph_dir: str, lo: int, hi: int, max_cliques: int, max_seconds: float,
+                   out: Path, tag: str, block: int = 2048) -> dict:
+    """Candidates first seen at edges ``[lo, hi)``; writes ``{tag}.ptr/.nodes/.lmax/.lmin.npy``."""
+    t0 = time.perf_counter()
+    t_cpu = time.thread_time()
+    g = load_graph(Path(graph_dir))
+    ptrs, nodes_l, lmax_l = [], [], []
+    total, work, offset = 0, 0, 0
+    status, where = 0, lo
+    max_work = np.int64(max(1, max_cliques) * 64)
+    for s in range(lo, hi, block):
+        e = min(hi, s + block)
+        ptr, nodes, lmax, st, wd = sweep_candidates(
+            g["indptr"], g["nbr"], g["nlev"], g["eid"], g["u"], g["v"], g["lev"],
+            s, e, np.int64(max_cliques - total), max_work - work)
+        work += int(wd)
+        if st != 0:
+            status, where = int(st), s
+            break
+        k = len(ptr) - 1
+        if k:
+            ptrs.append(ptr[1:] + offset)
+            nodes_l.append(nodes)
+            lmax_l.append(lmax)
+            offset += int(ptr[-1])
+            total += k
+        if time.perf_counter() - t0 > max_seconds:
+            status, where = 3, e
+            break
+    result = {"lo": lo, "hi": hi, "status": status, "at_edge": where, "work": work, "candidates": total,
+              "seconds": time.perf_counter() - t0}
+    if status:
+        result["cpu"] = time.thread_time() - t_cpu
+        return result
+    ptr = np.concatenate([np.zeros(1, np.int64)] + ptrs) if ptrs else np.zeros(1, np.int64)
+    nodes = np.concatenate(nodes_l) if nodes_l else np.empty(0, np.int64)
+    lmax = np.concatenate(lmax_l).astype(np.int32) if lmax_l else np.empty(0, np.int32)
+    lmin = level_min(g["indptr"], g["nbr"], g["nlev"], ptr, nodes).astype(np.int32)
+    out.mkdir(parents=True, exist_ok=True)
+    files = []
+    for name, arr in (("ptr", ptr), ("nodes", nodes), ("lmax", lmax), ("lmin", lmin)):
+        rel = f"{tag}.{name}.npy"
+        save_npy(out / rel, arr)
+        files.append(rel)
+    result["files"] = files
+    result["incidences"] = int(((np.diff(ptr) * (np.diff(ptr) - 1)) // 2).sum())
+    result["cpu"] = time.thread_time() - t_cpu
+    return result
+
+
+def concat_units(folder: Path, tags: list[str], out: Path) -> dict:
+    """Concatenate unit outputs in unit order into the candidate table files."""
+    ptrs, nodes_l, lmax_l, lmin_l = [np.zeros(1, np.int64)], [], [], []
+    offset = 0
+    for tag in tags:
+        ptr = load_npy(folder / f"{tag}.ptr.npy")
+        ptrs.append(ptr[1:] + offset)
+        offset += int(ptr[-1])
+        nodes_l.append(load_npy(folder / f"{tag}.nodes.npy"))
+        lmax_l.append(load_npy(folder / f"{tag}.lmax.npy"))
+        lmin_l.append(load_npy(folder / f"{tag}.lmin.npy"))
+    ptr = np.concatenate(ptrs)
+    nodes = np.concatenate(nodes_l) if nodes_l else np.empty(0, np.int64)
+    lmax = np.concatenate(lmax_l) if lmax_l else np.empty(0, np.int32)
+    lmin = np.concatenate(lmin_l) if lmin_l else np.empty(0, np.int32)
+    out.mkdir(parents=True, exist_ok=True)
+    save_npy(out / "cand_ptr.npy", ptr)
+    save_npy(out / "cand_nodes.npy", nodes)
+    save_npy(out / "level_max.npy", lmax)
+    save_npy(out / "level_min.npy", lmin)
+    sizes = np.diff(ptr)
+    return {"candidates": int(len(ptr) - 1), "member_rows": int(len(nodes)),
+            "largest_candidate": int(sizes.max()) if len(sizes) else 0}
+
+
+def build_incidence(graph_dir: Path, cand_dir: Path, out: Path) -> dict:
+    """Edge -> candidate CSR over the edge store's edge order; writes ``inc_ptr/inc_cand.npy``."""
+    t_cpu = time.thread_time()
+    g = load_graph(graph_dir)
+    ptr = load_npy(cand_dir / "cand_ptr.npy")
+    nodes = load_npy(cand_dir / "cand_nodes.npy")
+    inc_ptr, inc_cand = incidence(g["indptr"], g["nbr"], g["eid"], ptr, nodes, np.int64(len(g["u"])))
+    save_npy(out / "inc_ptr.npy", inc_ptr)
+    save_npy(out / "inc_cand.npy", inc_cand)
+    uncovered = int((np.diff(inc_ptr) == 0).sum())
+    return {"incidences": int(len(inc_cand)), "uncovered_edges": uncovered, "cpu": time.thread_time() - t_cpu}
+
+
+def plan_units(n_edges: int, edges_per_unit: int) -> list[tuple[int, int]]:
+    """Edge blocks ``[lo, hi)`` covering all edges."""
+    step = max(1, int(edges_per_unit))
+    return [(lo, min(n_edges, lo + step)) for lo in range(0, n_edges, step)]

@@ -1,0 +1,451 @@
+"""Per-chunk functions of the ingest stage (pure: arguments in, files or arrays out).
+
+An export is cut into *read tasks*: a Parquet file's row groups, or one CSV file
+read as a stream of blocks. Each task is handled three times:
+
+1. :func:`scan_labels` reads the label (and time) columns and returns the task's
+   distinct labels; :func:`union_labels` merges those pairwise into the sorted
+   label table, which defines the contiguous node ids (rank in sorted order).
+2. :func:`map_and_bucket` reads the whole task, checks weights, applies the time
+   window, maps labels to ids, drops self-loops and zero weights, orders each pair
+   ``u < v`` and writes the rows grouped by node-range bucket to scratch ``.npy``.
+3. :func:`aggregate_bucket` reads one bucket's slices from every task's scratch
+   file, merges duplicate pairs and writes one edge-store partition.
+
+Every row read is accounted for in the counts returned by step 2.
+"""
+
+from __future__ import annotations
+
+import glob
+import os
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+
+from cliquewise.kernels.aggregate import aggregate_pairs, order_pairs
+from cliquewise.kernels.buckets import bucket_of, scatter_by_bucket
+from cliquewise.store import load_npy, save_npy
+
+PARQUET_SUFFIXES = (".parquet", ".pq", ".parq")
+CSV_SUFFIXES = (".csv", ".tsv", ".txt", ".csv.gz", ".tsv.gz", ".csv.bz2")
+MERGE_CODES = {"sum": 0, "max": 1, "min": 2}
+
+
+class ExportError(ValueError):
+    """A problem with the user's export; the message is one line naming file and column."""
+
+
+@dataclass(frozen=True)
+class Columns:
+    source: str = "source"
+    target: str = "target"
+    weight: str | None = "weight"
+    time: str | None = None
+
+
+@dataclass(frozen=True)
+class ReadTask:
+    """One unit of reading: a file, and for Parquet a range of its row groups."""
+
+    path: str
+    kind: str  # "parquet" or "csv"
+    row_groups: tuple[int, ...] = ()
+    rows: int = -1  # known for Parquet, -1 for CSV
+    index: int = 0
+
+    @property
+    def name(self) -> str:
+        return f"t{self.index:05d}"
+
+
+# -- finding the files ----------------------------------------------------------
+
+def resolve_files(spec: str | list[str]) -> list[str]:
+    """Files named by a path, folder or glob (or a list of them), sorted, hidden files skipped."""
+    specs = [spec] if isinstance(spec, (str, os.PathLike)) else list(spec)
+    files: list[str] = []
+    for s in specs:
+        s = os.fspath(s)
+        if any(ch in s for ch in "*?["):
+            matched = sorted(glob.glob(s, recursive=True))
+            if not matched:
+                raise ExportError(f"{s}: the pattern matches no file")
+            files.extend(m for m in matched if os.path.isfile(m))
+        elif os.path.isdir(s):
+            found = sorted(
+                str(p) for p in Path(s).rglob("*")
+                if p.is_file() and not any(part.startswith((".", "_")) for part in p.relative_to(s).parts)
+            )
+            if not found:
+                raise ExportError(f"{s}: the folder holds no data file")
+            files.extend(found)
+        elif os.path.isfile(s):
+            files.append(s)
+        else:
+            raise ExportError(f"{s}: no such file or folder")
+    keep = [f for f in files if _kind(f) is not None]
+    if not keep:
+        raise ExportError(f"{specs[0]}: no Parquet or CSV file found (looked for {', '.join(PARQUET_SUFFIXES + CSV_SUFFIXES)})")
+    return keep
+
+
+def _kind(path: str) -> str | None:
+    low = path.lower()
+    if low.endswith(PARQUET_SUFFIXES):
+        return "parquet"
+    if low.endswith(CSV_SUFFIXES):
+        return "csv"
+    return None
+
+
+def plan_tasks(files: list[str], rows_per_task: int) -> list[ReadTask]:
+    """Cut the files into read tasks of about ``rows_per_task`` rows."""
+    tasks: list[ReadTask] = []
+    for f in files:
+        kind = _kind(f)
+        if kind == "csv":
+            tasks.append(ReadTask(f, "csv", (), -1, len(tasks)))
+            continue
+        try:
+            meta = pq.ParquetFile(f).metadata
+        except Exception as exc:  # noqa: BLE001 - pyarrow raises several types
+            raise ExportError(f"{f}: not a readable Parquet file ({_short(exc)})") from exc
+        group, rows = [], 0
+        for g in range(meta.num_row_groups):
+            group.append(g)
+            rows += meta.row_group(g).num_rows
+            if rows >= rows_per_task:
+                tasks.append(ReadTask(f, "parquet", tuple(group), rows, len(tasks)))
+                group, rows = [], 0
+        if group or meta.num_row_groups == 0:
+            tasks.append(ReadTask(f, "parquet", tuple(group), rows, len(tasks)))
+    return tasks
+
+
+def fingerprint(files: list[str]) -> list[dict]:
+    """What identifies the input for resume: path, size and modification time."""
+    out = []
+    for f in files:
+        st = os.stat(f)
+        out.append({"path": os.path.abspath(f), "bytes": st.st_size, "mtime_ns": st.st_mtime_ns})
+    return out
+
+
+def _short(exc: Exception) -> str:
+    return str(exc).strip().splitlines()[0][:200] if str(exc).strip() else type(exc).__name__
+
+
+# -- reading --------------------------------------------------------------------
+
+def iter_batches(task: ReadTask, columns: list[str], csv_block: int = 1 << 24):
+    """Yield ``pyarrow.RecordBatch`` es of the requested columns (a missing one is an error)."""
+    if task.kind == "parquet":
+        try:
+            pf = pq.ParquetFile(task.path)
+        except Exception as exc:  # noqa: BLE001
+            raise ExportError(f"{task.path}: not a readable Parquet file ({_short(exc)})") from exc
+        names = pf.schema_arrow.names
+        _check_columns(task.path, names, columns)
+        if not task.row_groups:
+            return
+        try:
+            yield from pf.iter_batches(batch_size=1 << 20, row_groups=list(task.row_groups), columns=columns)
+        except Exception as exc:  # noqa: BLE001
+            raise ExportError(f"{task.path}: corrupt or truncated Parquet data ({_short(exc)})") from exc
+        return
+    delim = "\t" if ".tsv" in task.path.lower() else ","
+    try:
+        head = pacsv.open_csv(task.path, read_options=pacsv.ReadOptions(block_size=1 << 16),
+                              parse_options=pacsv.ParseOptions(delimiter=delim, newlines_in_values=True))
+        names = head.schema.names
+        head.close() if hasattr(head, "close") else None
+    except pa.ArrowInvalid as exc:
+        if "Empty CSV" in str(exc):
+            return
+        raise ExportError(f"{task.path}: not a readable CSV file ({_short(exc)})") from exc
+    _check_columns(task.path, names, columns)
+    # labels and weights are read as text and converted by us, so that every
+    # block of a file is typed the same way and bad values are reported, not guessed
+    types = {c: pa.string() for c in columns}
+    reader = pacsv.open_csv(
+        task.path,
+        read_options=pacsv.ReadOptions(block_size=csv_block),
+        parse_options=pacsv.ParseOptions(delimiter=delim, newlines_in_values=True),
+        convert_options=pacsv.ConvertOptions(include_columns=columns, column_types=types,
+                                             strings_can_be_null=False, quoted_strings_can_be_null=False),
+    )
+    try:
+        for batch in reader:
+            yield batch
+    except pa.ArrowInvalid as exc:
+        raise ExportError(f"{task.path}: malformed CSV ({_short(exc)})") from exc
+
+
+def _check_columns(path: str, found: list[str], wanted: list[str]) -> None:
+    missing = [c for c in wanted if c not in found]
+    if missing:
+        raise ExportError(
+            f"{path}: missing column{'s' if len(missing) > 1 else ''} {', '.join(repr(m) for m in missing)}; "
+            f"found {', '.join(repr(f) for f in found)} (rename with --source/--target/--weight/--time)")
+
+
+# -- labels ---------------------------------------------------------------------
+
+def _label_array(arr: pa.ChunkedArray | pa.Array) -> tuple[pa.Array, str]:
+    """Normalise a label column to int64 or string; report which."""
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks()
+    t = arr.type
+    if pa.types.is_integer(t):
+        return arr.cast(pa.int64()), "int"
+    if pa.types.is_dictionary(t):
+        return _label_array(arr.dictionary_decode())
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        arr = arr.cast(pa.string())
+        try:  # text that is all integers (CSV) is integer labels, when it round-trips exactly
+            as_int = pc.cast(arr, pa.int64())
+            if pc.all(pc.equal(pc.cast(as_int, pa.string()), arr)).as_py() in (True, None):
+                return as_int, "int"
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            pass
+        return arr, "str"
+    if pa.types.is_floating(t):
+        as_int = pc.cast(arr, pa.int64(), safe=False)
+        if pc.all(pc.equal(pc.cast(as_int, t), arr)).as_py() in (True, None):
+            return as_int, "int"
+        return pc.cast(arr, pa.string()), "str"
+    return pc.cast(arr, pa.string()), "str"
+
+
+def scan_labels(task: ReadTask, cols: Columns, window: tuple | None) -> dict:
+    """Distinct labels of one task (after the time window), with their kind."""
+    wanted = [cols.source, cols.target] + ([cols.time] if cols.time else [])
+    uniq: list[pa.Array] = []
+    kinds = set()
+    nulls = 0
+    for batch in iter_batches(task, wanted):
+        if cols.time and window is not None:
+            batch = batch.filter(time_mask(batch.column(cols.time), window, task.path, cols.time))
+        for c in (cols.source, cols.target):
+            col = batch.column(c)
+            nulls += col.null_count
+            arr, kind = _label_array(col.drop_null())
+            kinds.add(kind)
+            uniq.append(pc.unique(arr))
+    kind = "str" if "str" in kinds else "int"
+    if not uniq:
+        return {"labels": pa.array([], pa.int64()), "kind": "int", "nulls": nulls}
+    arrs = [a if kind == "int" or a.type == pa.string() else pc.cast(a, pa.string()) for a in uniq]
+    labels = pc.unique(pa.chunked_array(arrs).combine_chunks())
+    return {"labels": labels, "kind": kind, "nulls": nulls}
+
+
+def union_labels(a: dict, b: dict) -> dict:
+    """Merge two label sets; integers meeting strings become strings."""
+    kind = "str" if "str" in (a["kind"], b["kind"]) else "int"
+    la, lb = a["labels"], b["labels"]
+    if kind == "str":
+        la = la if la.type == pa.string() else pc.cast(la, pa.string())
+        lb = lb if lb.type == pa.string() else pc.cast(lb, pa.string())
+    merged = pc.unique(pa.chunked_array([la, lb]).combine_chunks())
+    mixed = a.get("mixed", False) or b.get("mixed", False) or (a["kind"] != b["kind"] and len(la) and len(lb))
+    return {"labels": merged, "kind": kind, "nulls": a["nulls"] + b["nulls"], "mixed": bool(mixed)}
+
+
+def sort_labels(labels: pa.Array) -> pa.Array:
+    """The label table: distinct labels in ascending order (node id = position)."""
+    return labels.take(pc.sort_indices(labels))
+
+
+# -- time window ------------------------------------------------------------------
+
+def time_mask(col, window, path, name) -> pa.Array:
+    """Rows with ``since <= time < until`` (either end may be open)."""
+    since, until = window
+    t = col
+    if pa.types.is_string(t.type) or pa.types.is_large_string(t.type):
+        try:
+            t = pc.cast(t, pa.timestamp("us"))
+        except pa.ArrowInvalid:
+            try:
+                t = pc.cast(col, pa.float64())
+            except pa.ArrowInvalid as exc:
+                raise ExportError(f"{path}: column {name!r} holds values that are neither times nor numbers") from exc
+    if pa.types.is_timestamp(t.type) and t.type.tz is not None:
+        t = pc.cast(t, pa.timestamp("us", tz="UTC")).cast(pa.timestamp("us"))
+    if pa.types.is_date(t.type):
+        t = pc.cast(t, pa.timestamp("us"))
+    mask = pc.is_valid(t)
+    for bound, op in ((since, pc.greater_equal), (until, pc.less)):
+        if bound is None:
+            continue
+        if pa.types.is_timestamp(t.type):
+            if isinstance(bound, (int, float)):
+                raise ExportError(f"{path}: column {name!r} holds times but the window bound {bound!r} is a number")
+            scalar = pa.scalar(np.datetime64(bound, "us"), pa.timestamp("us"))
+            mask = pc.and_(mask, op(pc.cast(t, pa.timestamp("us")), scalar))
+        else:
+            if not isinstance(bound, (int, float)):
+                raise ExportError(f"{path}: column {name!r} holds numbers but the window bound {bound!r} is a time")
+            mask = pc.and_(mask, op(pc.cast(t, pa.float64()), pa.scalar(float(bound))))
+    return pc.fill_null(mask, False)
+
+
+# -- weights --------------------------------------------------------------------
+
+def weights_to_float(col, path: str, name: str, examples: list, limit: int = 5):
+    """Weights as float64 plus a per-row flag of values that are not numbers at all."""
+    if isinstance(col, pa.ChunkedArray):
+        col = col.combine_chunks()
+    if pa.types.is_integer(col.type) or pa.types.is_floating(col.type) or pa.types.is_boolean(col.type) \
+            or pa.types.is_decimal(col.type):
+        w = pc.cast(col, pa.float64()).to_numpy(zero_copy_only=False)
+        return w, np.asarray(pc.is_null(col).to_numpy(zero_copy_only=False))
+    if pa.types.is_string(col.type) or pa.types.is_large_string(col.type):
+        try:
+            wcol = pc.cast(pc.utf8_trim_whitespace(col), pa.float64())
+            w = wcol.to_numpy(zero_copy_only=False)
+            return w, np.asarray(pc.is_null(col).to_numpy(zero_copy_only=False))
+        except pa.ArrowInvalid:
+            import pandas as pd  # only on the error path: find which rows are not numbers
+
+            s = pd.Series(col.to_pylist(), dtype=object)
+            num = pd.to_numeric(s, errors="coerce")
+            bad = num.isna() & s.notna() & ~s.astype(str).str.strip().str.lower().isin(["nan", "inf", "-inf", "+inf", "infinity", "-infinity"])
+            for i in np.flatnonzero(bad.to_numpy())[: max(0, limit - len(examples))]:
+                examples.append(f"{name}={s.iloc[i]!r}")
+            w = num.to_numpy(dtype=np.float64, na_value=np.nan)
+            return w, bad.to_numpy() | s.isna().to_numpy()
+    raise ExportError(f"{path}: column {name!r} has type {col.type}, not numbers")
+
+
+def map_and_bucket(task: ReadTask, cols: Columns, window, labels: pa.Array, kind: str,
+                   n_buckets: int, on_invalid: str, scratch: Path) -> dict:
+    """Map one task's rows to ordered id pairs, grouped by bucket, written to ``scratch``."""
+    t_cpu = time.thread_time()
+    n_nodes = len(labels)
+    wanted = [cols.source, cols.target] + ([cols.weight] if cols.weight else []) + ([cols.time] if cols.time else [])
+    counts = dict(rows_read=0, outside_window=0, null_label=0, invalid_weight=0, nan_weight=0,
+                  inf_weight=0, negative_weight=0, non_numeric_weight=0, self_loop=0, zero_weight=0,
+                  rows_kept=0)
+    examples: list[str] = []
+    parts_u, parts_v, parts_w = [], [], []
+    id_dtype = np.int32 if n_nodes < 2**31 - 1 else np.int64
+    for batch in iter_batches(task, wanted):
+        counts["rows_read"] += batch.num_rows
+        if cols.time and window is not None:
+            m = time_mask(batch.column(cols.time), window, task.path, cols.time)
+            before = batch.num_rows
+            batch = batch.filter(m)
+            counts["outside_window"] += before - batch.num_rows
+        src, dst = batch.column(cols.source), batch.column(cols.target)
+        ok = pc.and_(pc.is_valid(src), pc.is_valid(dst))
+        n_null = batch.num_rows - pc.sum(pc.cast(ok, pa.int64())).as_py() if batch.num_rows else 0
+        if n_null:
+            counts["null_label"] += n_null
+            batch = batch.filter(ok)
+            src, dst = batch.column(cols.source), batch.column(cols.target)
+        if batch.num_rows == 0:
+            continue
+        if cols.weight:
+            w, non_numeric = weights_to_float(batch.column(cols.weight), task.path, cols.weight, examples)
+            nan = np.isnan(w) & ~non_numeric
+            inf = np.isinf(w)
+            neg = w < 0
+            bad = non_numeric | nan | inf | neg
+            nbad = int(bad.sum())
+            if nbad:
+                counts["non_numeric_weight"] += int(non_numeric.sum())
+                counts["nan_weight"] += int(nan.sum())
+                counts["inf_weight"] += int(inf.sum())
+                counts["negative_weight"] += int((neg & ~inf).sum())
+                counts["invalid_weight"] += nbad
+                if len(examples) < 5:
+                    s_py, d_py = src.to_pylist(), dst.to_pylist()
+                    for i in np.flatnonzero(bad)[: 5 - len(examples)]:
+                        examples.append(f"{s_py[i]!r} -> {d_py[i]!r} weight {_fmt_w(w[i], non_numeric[i])}")
+                keep = ~bad
+                w = w[keep]
+                src, dst = src.filter(pa.array(keep)), dst.filter(pa.array(keep))
+        else:
+            w = np.ones(batch.num_rows, np.float64)
+        a = _to_ids(src, labels, kind)
+        b = _to_ids(dst, labels, kind)
+        zero = w == 0
+        n_zero = int(zero.sum())
+        if n_zero:
+            nz = ~zero
+            a, b, w = a[nz], b[nz], w[nz]
+        u, v, ww, n_self = order_pairs(a, b, w)
+        counts["self_loop"] += int(n_self)
+        counts["zero_weight"] += int(n_zero)
+        counts["rows_kept"] += len(u)
+        parts_u.append(u.astype(id_dtype, copy=False))
+        parts_v.append(v.astype(id_dtype, copy=False))
+        parts_w.append(ww)
+    if counts["invalid_weight"] and on_invalid == "error":
+        return {"counts": counts, "examples": examples, "failed": True, "task": task.name, "path": task.path,
+                "cpu": time.thread_time() - t_cpu}
+    u = np.concatenate(parts_u) if parts_u else np.empty(0, id_dtype)
+    v = np.concatenate(parts_v) if parts_v else np.empty(0, id_dtype)
+    w = np.concatenate(parts_w) if parts_w else np.empty(0, np.float64)
+    del parts_u, parts_v, parts_w
+    bucket = bucket_of(u, max(n_nodes, 1), n_buckets)
+    u, v, w, offsets = scatter_by_bucket(bucket, n_buckets, u, v, w)
+    del bucket
+    scratch.mkdir(parents=True, exist_ok=True)
+    files = []
+    for name, arr in (("u", u), ("v", v), ("w", w), ("off", offsets)):
+        rel = f"{task.name}.{name}.npy"
+        save_npy(scratch / rel, arr)
+        files.append(rel)
+    return {"counts": counts, "examples": examples, "failed": False, "task": task.name, "path": task.path,
+            "files": files, "cpu": time.thread_time() - t_cpu}
+
+
+def _fmt_w(x, non_numeric) -> str:
+    return "not a number" if non_numeric else repr(float(x))
+
+
+def _to_ids(col, labels: pa.Array, kind: str) -> np.ndarray:
+    arr, k = _label_array(col)
+    if kind == "str" and arr.type != pa.string():
+        arr = pc.cast(arr, pa.string())
+    ids = pc.index_in(arr, value_set=labels)
+    return ids.to_numpy(zero_copy_only=False).astype(np.int64, copy=False)
+
+
+# -- aggregation ----------------------------------------------------------------
+
+def aggregate_bucket(b: int, lo: int, hi: int, scratch: Path, task_names: list[str], merge: str,
+                     out: Path) -> dict:
+    """Merge bucket ``b``'s rows from every task and write one edge-store partition."""
+    t_cpu = time.thread_time()
+    us, vs, ws = [], [], []
+    for name in task_names:
+        off = load_npy(scratch / f"{name}.off.npy")
+        s, e = int(off[b]), int(off[b + 1])
+        if e > s:
+            us.append(np.asarray(load_npy(scratch / f"{name}.u.npy", mmap=True)[s:e], np.int64))
+            vs.append(np.asarray(load_npy(scratch / f"{name}.v.npy", mmap=True)[s:e], np.int64))
+            ws.append(np.asarray(load_npy(scratch / f"{name}.w.npy", mmap=True)[s:e]))
+    u = np.concatenate(us) if us else np.empty(0, np.int64)
+    v = np.concatenate(vs) if vs else np.empty(0, np.int64)
+    w = np.concatenate(ws) if ws else np.empty(0, np.float64)
+    rows_in = len(u)
+    del us, vs, ws
+    u, v, w = aggregate_pairs(u, v, w, lo, hi, MERGE_CODES[merge])
+    table = pa.table({"u": pa.array(u, pa.int64()), "v": pa.array(v, pa.int64()), "weight": pa.array(w, pa.float64())})
+    out.parent.mkdir(parents=True, exist_ok=True)
+    pq.write_table(table, out, compression="zstd", row_group_size=1 << 20)
+    integral = bool(np.all(w == np.floor(w))) if len(w) else True
+    return {"bucket": b, "rows_in": rows_in, "pairs": len(u), "weight_total": float(w.sum()),
+            "integral": integral, "w_min": float(w.min()) if len(w) else None,
+            "w_max": float(w.max()) if len(w) else None, "cpu": time.thread_time() - t_cpu}

@@ -1,0 +1,133 @@
+"""The enumerate stage: candidate groups (thresholded maximal cliques) and the incidence.
+
+Reads   ``ingest/edges``, ``ingest/labels.parquet``, ``split/nodes.parquet``.
+Writes  ``enumerate/levels.npy``                       the thresholds, ascending;
+        ``enumerate/cand_ptr.npy``, ``cand_nodes.npy``  candidate k = nodes[ptr[k]:ptr[k+1]];
+        ``enumerate/level_min.npy``, ``level_max.npy``  level indices where k is maximal;
+        ``enumerate/inc_ptr.npy``, ``inc_cand.npy``     edge -> candidates (CSR, edge order
+                                                         of the edge store);
+        ``enumerate/weight.npy``                        edge weights in that order.
+
+Work units are blocks of edges. Every edge is handled once, whatever the number of
+levels: the candidates first seen at the edge's level that contain it. Units run
+as dask tasks on a memory-mapped CSR and each finished unit is checkpointed; a unit
+that exceeds its budget (clique count, work, seconds) stops the stage with a
+message naming the component and the ways out.
+"""
+
+from __future__ import annotations
+
+import shutil
+
+import numpy as np
+import pyarrow.parquet as pq
+
+from cliquewise.parts import candidates as parts
+from cliquewise.stage import InputError, StageContext
+from cliquewise.store import RunStore, load_npy
+
+NAME = "enumerate"
+UPSTREAM = ["ingest", "split"]
+
+
+class BlowUpError(InputError):
+    """A work unit exceeded its clique budget."""
+
+
+def params_from(settings) -> dict:
+    c = settings.candidates
+    return {"levels": c.levels, "max_cliques": c.max_cliques, "max_seconds": c.max_seconds,
+            "edges_per_unit": c.edges_per_unit}
+
+
+def run(ctx: StageContext) -> dict:
+    p = ctx.params
+    ingest_dir = ctx.input_dir("ingest")
+    work = ctx.work
+    n_nodes = pq.read_metadata(ingest_dir / "labels.parquet").num_rows
+    edge_files = sorted((ingest_dir / "edges").glob("part-*.parquet"))
+    gdir = work / "graph"
+
+    with ctx.substep("graph"):
+        if not RunStore.unit_done(work, "graph"):
+            info = ctx.engine.submit(parts.build_graph, edge_files, n_nodes, p["levels"], gdir).result()
+            ctx.worker_cpu += info.pop("cpu", 0.0)
+            RunStore.unit_commit(work, "graph", [f"graph/{f}.npy" for f in parts.GRAPH_FILES + ("levels",)], info)
+        info = RunStore.unit_info(work, "graph")
+    n_edges = info["edges"]
+    units = parts.plan_units(n_edges, p["edges_per_unit"])
+    tags = [f"e{lo:012d}" for lo, _ in units]
+
+    with ctx.substep("cliques"):
+        todo = [(lo, hi, tag) for (lo, hi), tag in zip(units, tags) if not RunStore.unit_done(work, f"cl-{tag}")]
+        results = ctx.engine.map(_unit, todo, str(gdir), p["max_cliques"], p["max_seconds"], str(work),
+                                 desc="enumerate: cliques")
+        ctx.worker_cpu += sum(r.get("cpu", 0.0) for r in results)
+        bad = [r for r in results if r["status"]]
+        if bad:
+            raise _blow_up_error(ctx, bad[0], gdir, p)
+        unit_stats = [RunStore.unit_info(work, f"cl-{t}") for t in tags]
+
+    with ctx.substep("collect"):
+        cinfo = parts.concat_units(work / "cl", tags, work)
+        shutil.rmtree(work / "cl", ignore_errors=True)
+
+    with ctx.substep("incidence"):
+        iinfo = ctx.engine.submit(parts.build_incidence, gdir, work, work).result()
+        ctx.worker_cpu += iinfo.pop("cpu", 0.0)
+    if iinfo["uncovered_edges"]:
+        raise RuntimeError(f"internal error: {iinfo['uncovered_edges']} edges lie in no candidate")
+
+    # keep what the fit and the results need; drop the CSR
+    shutil.move(str(gdir / "levels.npy"), str(work / "levels.npy"))
+    shutil.move(str(gdir / "weight.npy"), str(work / "weight.npy"))
+    shutil.rmtree(gdir, ignore_errors=True)
+    sizes = np.diff(load_npy(work / "cand_ptr.npy"))
+    hist = np.bincount(sizes) if len(sizes) else np.zeros(0, np.int64)
+    return {
+        "edges": n_edges,
+        "levels": info["levels"],
+        "units": len(units),
+        "candidates": cinfo["candidates"],
+        "largest_candidate": cinfo["largest_candidate"],
+        "incidences": iinfo["incidences"],
+        "work": int(sum(s.get("work", 0) for s in unit_stats)),
+        "size_histogram": {str(s): int(c) for s, c in enumerate(hist) if c},
+    }
+
+
+def _unit(item, graph_dir, max_cliques, max_seconds, work):
+    from pathlib import Path
+
+    lo, hi, tag = item
+    work = Path(work)
+    res = parts.enumerate_unit(graph_dir, lo, hi, max_cliques, max_seconds, work / "cl", tag)
+    if not res["status"]:
+        RunStore.unit_commit(work, f"cl-{tag}", [f"cl/{f}" for f in res["files"]],
+                             {k: res[k] for k in ("lo", "hi", "candidates", "work", "seconds", "incidences")})
+    return res
+
+
+def _blow_up_error(ctx: StageContext, res: dict, gdir, p) -> BlowUpError:
+    """Name the component where the budget ran out, and the ways out."""
+    from cliquewise.kernels.cliques import degeneracy_order
+
+    g = parts.load_graph(gdir)
+    e = int(res["at_edge"])
+    node = int(g["u"][min(e, len(g["u"]) - 1)])
+    split_nodes = pq.read_table(ctx.input_dir("split") / "nodes.parquet", columns=["component"])
+    comp = split_nodes.column("component").to_numpy()
+    c = int(comp[node])
+    members = np.flatnonzero(comp == c)
+    comp_edges = int(np.isin(g["u"], members).sum())
+    _, core = degeneracy_order(np.asarray(g["indptr"]), np.asarray(g["nbr"]))
+    degen = int(core[members].max()) if len(members) else 0
+    levels = load_npy(gdir / "levels.npy")
+    lev = float(levels[int(g["lev"][e])]) if len(levels) else float("nan")
+    what = parts.STATUS_TEXT.get(res["status"], "budget")
+    limit = {1: f"{p['max_cliques']} cliques", 2: f"{p['max_cliques'] * 64} work steps",
+             3: f"{p['max_seconds']:g} s"}.get(res["status"], "")
+    return BlowUpError(
+        f"candidate listing exceeded its {what} budget ({limit}) in component {c} "
+        f"({len(members)} nodes, {comp_edges} edges, degeneracy {degen}) at weight level {lev:g}; "
+        f"raise --max-cliques/--max-seconds, use coarser --levels, or drop or cap that component in the export")

@@ -1,0 +1,154 @@
+"""The fit stage: EM for the group intensities, as a map-reduce over incidence parts.
+
+Reads   ``enumerate/inc_ptr.npy``, ``inc_cand.npy``, ``weight.npy``, ``cand_ptr.npy``.
+Writes  ``fit/mu.npy``           fitted intensities after pruning (0 = pruned);
+        ``fit/mu_full.npy``      intensities before pruning;
+        ``fit/trace.json``       log-likelihood at every accepted iterate, both phases;
+        ``fit/report.json``      iterations, convergence, log-likelihood, groups kept.
+
+Each EM step maps :func:`parts.fitting.em_part` over parts of the edge range (about
+``incidences_per_part`` incidences each) with ``mu`` broadcast, and reduces the
+partial sums in part order, so the result does not depend on the engine. SQUAREM
+(on by default) wraps the step. ``mu`` and the trace are checkpointed every
+``checkpoint_every`` iterations; a resumed fit continues from the checkpoint and
+reaches the same result as an uninterrupted one.
+
+Pruning: a candidate whose expected weight ``mu * P`` is below ``prune`` is set
+to 0, except where that would leave one of its edges with no positive rate (the
+strongest candidate on such an edge is kept); the kept groups are then refitted.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from cliquewise.kernels.em import fit_em, loglik_constant, penalty
+from cliquewise.parts import fitting as parts
+from cliquewise.stage import StageContext
+from cliquewise.store import RunStore, load_npy, read_json, save_npy, write_json_atomic
+
+NAME = "fit"
+UPSTREAM = ["enumerate"]
+
+
+def params_from(settings) -> dict:
+    f = settings.fit
+    return {"tol": f.tol, "max_iter": f.max_iter, "accelerate": f.accelerate, "prune": f.prune,
+            "checkpoint_every": f.checkpoint_every, "incidences_per_part": f.incidences_per_part}
+
+
+class DistributedStep:
+    """``step(mu) -> (EM image of mu, log-likelihood at mu)`` over the cluster."""
+
+    def __init__(self, ctx: StageContext, enum_dir, part_ranges, P):
+        self.ctx = ctx
+        self.enum_dir = str(enum_dir)
+        self.parts = part_ranges
+        self.P = P
+        self.evals = 0
+
+    def partial(self, mu):
+        eng = self.ctx.engine
+        mu_ref = eng.scatter(mu)
+        res = eng.map(parts.em_part, self.parts, self.enum_dir, mu_ref)
+        acc = np.zeros(len(mu), np.float64)
+        total = 0.0
+        for r in res:  # part order: deterministic whatever the engine
+            lo = r["cand_lo"]
+            acc[lo:lo + len(r["acc"])] += r["acc"]
+            total += r["loglik"]
+        return acc, total
+
+    def __call__(self, mu):
+        self.evals += 1
+        acc, total = self.partial(mu)
+        new = np.where(mu == 0.0, 0.0, mu * acc / self.P)
+        return new, total - penalty(mu, self.P)
+
+    def loglik(self, mu) -> float:
+        _, total = self.partial(mu)
+        return total - penalty(mu, self.P)
+
+
+def _fit_phase(ctx, step, mu0, p, phase: str, work):
+    """One EM run with checkpoints; resumes from the phase's checkpoint when present."""
+    ck_unit = f"ckpt-{phase}"
+    trace0: list[float] = []
+    start_iter = 0
+    if RunStore.unit_done(work, ck_unit):
+        info = RunStore.unit_info(work, ck_unit)
+        mu0 = load_npy(work / f"ckpt-{phase}.npy")
+        trace0 = info["trace"]
+        start_iter = info["iteration"]
+
+    def checkpoint(it, mu, ll, trace):
+        if p["checkpoint_every"] and it > start_iter and it % p["checkpoint_every"] == 0:
+            save_npy(work / f"ckpt-{phase}.npy", mu)
+            RunStore.unit_commit(work, ck_unit, [f"ckpt-{phase}.npy"],
+                                 {"iteration": it, "trace": trace[:-1]})
+        return None
+
+    return fit_em(step, step.loglik, mu0, tol=p["tol"], max_iter=p["max_iter"], accelerate=p["accelerate"],
+                  callback=checkpoint, trace0=trace0, start_iter=start_iter)
+
+
+def run(ctx: StageContext) -> dict:
+    p = ctx.params
+    enum_dir = ctx.input_dir("enumerate")
+    work = ctx.work
+    cand_ptr = load_npy(enum_dir / "cand_ptr.npy")
+    sizes = np.diff(cand_ptr).astype(np.float64)
+    P = sizes * (sizes - 1.0) / 2.0
+    inc_ptr = load_npy(enum_dir / "inc_ptr.npy", mmap=True)
+    ranges = parts.plan_parts(np.asarray(inc_ptr), p["incidences_per_part"])
+    step = DistributedStep(ctx, enum_dir, ranges, P)
+
+    with ctx.substep("start"):
+        acc, _ = step.partial(np.ones(len(P)))
+        mu0 = acc / P  # each edge's weight shared equally among its candidates
+    with ctx.substep("em"):
+        full = _fit_phase(ctx, step, mu0, p, "full", work)
+    mu_full = full.mu
+    with ctx.substep("prune"):
+        mu = np.where(mu_full * P < p["prune"], 0.0, mu_full)
+        restore = parts.restore_support(ctx.engine, ranges, str(enum_dir), mu, mu_full)
+        mu[restore] = mu_full[restore]
+        pruned = int(((mu == 0) & (mu_full > 0)).sum())
+    with ctx.substep("refit"):
+        refit = _fit_phase(ctx, step, mu, p, "kept", work) if pruned else full
+    mu = refit.mu
+    y = load_npy(enum_dir / "weight.npy", mmap=True)
+    const = float(loglik_constant(np.asarray(y)))
+    kept = int((mu > 0).sum())
+    report = {
+        "candidates": int(len(P)),
+        "groups_kept": kept,
+        "pruned": int(len(P) - kept),
+        "redundancy": float(len(P) / kept) if kept else None,
+        "prune_threshold": p["prune"],
+        "restored_for_support": int(len(restore)),
+        "iterations": int(full.iterations + (refit.iterations if pruned else 0)),
+        "iterations_full": int(full.iterations),
+        "iterations_refit": int(refit.iterations) if pruned else 0,
+        "em_evaluations": step.evals,
+        "converged": bool(full.converged and (refit.converged if pruned else True)),
+        "loglik_full_model": float(full.loglik) + const,
+        "loglik": float(refit.loglik) + const,
+        "loglik_constant": const,
+        "weight_total": float(np.sum(y)),
+        "fitted_total": float(np.sum(mu * P)),
+        "parts": len(ranges),
+        "accelerate": p["accelerate"],
+    }
+    save_npy(work / "mu.npy", mu)
+    save_npy(work / "mu_full.npy", mu_full)
+    write_json_atomic(work / "trace.json", {"full": [float(x) + const for x in full.trace],
+                                             "kept": [float(x) + const for x in refit.trace] if pruned else []})
+    write_json_atomic(work / "report.json", report)
+    for f in work.glob("ckpt-*.npy"):
+        f.unlink()
+    return {k: report[k] for k in ("candidates", "groups_kept", "iterations", "converged", "loglik", "parts")}
+
+
+def read_report(stage_dir) -> dict:
+    return read_json(stage_dir / "report.json")

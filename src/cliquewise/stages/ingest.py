@@ -1,0 +1,238 @@
+"""The ingest stage: an export of interaction rows becomes the edge store.
+
+Reads   the user's Parquet or CSV files (lazily, one read task at a time on dask).
+Writes  ``ingest/edges/part-*.parquet``  columns ``u < v`` (int64 node ids), ``weight``;
+        partition b holds the pairs whose ``u`` lies in node range b, sorted by (u, v);
+        ``ingest/labels.parquet``        ``node_id``, ``label`` (ids are label ranks);
+        ``ingest/report.json``           rows read = rows kept + dropped, by reason.
+
+Memory: a worker holds one read task (or one bucket) at a time; the driver holds
+only the label table and per-task counts, never rows.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import shutil
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from cliquewise.parts import ingest as parts
+from cliquewise.stage import InputError, StageContext
+from cliquewise.store import RunStore, write_json_atomic
+
+NAME = "ingest"
+UPSTREAM: list[str] = []
+
+
+def params_from(settings) -> dict:
+    """The parameters that define this stage's result (hashed into its key)."""
+    i = settings.input
+    return {
+        "columns": {"source": i.source, "target": i.target, "weight": i.weight or None, "time": i.time or None},
+        "since": i.since, "until": i.until, "merge": i.merge, "on_invalid": i.on_invalid,
+        "rows_per_task": i.rows_per_task, "rows_per_bucket": i.rows_per_bucket,
+    }
+
+
+def inputs_from(settings) -> list[dict]:
+    try:
+        files = parts.resolve_files(settings.input.edges)
+    except parts.ExportError as exc:
+        raise InputError(str(exc)) from None
+    return parts.fingerprint(files)
+
+
+def _window(p):
+    if p["since"] is None and p["until"] is None:
+        return None
+    conv = []
+    for x in (p["since"], p["until"]):
+        if isinstance(x, str):
+            try:
+                x = float(x) if x.replace(".", "", 1).lstrip("-").isdigit() else x
+            except ValueError:
+                pass
+        conv.append(x)
+    return tuple(conv)
+
+
+def run(ctx: StageContext, inputs: list[dict]) -> dict:
+    p = ctx.params
+    cols = parts.Columns(**p["columns"])
+    if cols.time is None and (p["since"] is not None or p["until"] is not None):
+        raise InputError("--since/--until need a time column (--time NAME)")
+    window = _window(p)
+    files = [i["path"] for i in inputs]
+    eng = ctx.engine
+    work = ctx.work
+
+    with ctx.substep("plan"):
+        try:
+            tasks = parts.plan_tasks(files, p["rows_per_task"])
+        except parts.ExportError as exc:
+            raise InputError(str(exc)) from None
+
+    # 1. labels ------------------------------------------------------------------
+    labels_path = work / "labels.parquet"
+    with ctx.substep("labels"):
+        if RunStore.unit_done(work, "labels"):
+            table = pq.read_table(labels_path)
+            labels = table.column("label").combine_chunks()
+            info = RunStore.unit_info(work, "labels")
+        else:
+            scans = _guard(lambda: eng.map(parts.scan_labels, tasks, cols, window, desc="ingest: labels"))
+            merged = _tree_reduce(eng, scans)
+            labels = parts.sort_labels(merged["labels"])
+            table = pa.table({"node_id": pa.array(np.arange(len(labels), dtype=np.int64)), "label": labels})
+            pq.write_table(table, labels_path, compression="zstd")
+            info = {"kind": merged["kind"], "mixed": merged.get("mixed", False), "null_labels": merged["nulls"]}
+            RunStore.unit_commit(work, "labels", ["labels.parquet"], info)
+    n_nodes = len(labels)
+    total_rows = sum(t.rows for t in tasks if t.rows >= 0) + sum(
+        max(1, os.path.getsize(t.path) // 16) for t in tasks if t.rows < 0)
+    n_buckets = max(1, min(4096, math.ceil(total_rows / max(1, p["rows_per_bucket"]))))
+    n_buckets = min(n_buckets, max(1, n_nodes))
+
+    # 2. map and bucket --------------------------------------------------------------
+    scratch = work / "scratch"
+    with ctx.substep("map"):
+        todo = [t for t in tasks if not RunStore.unit_done(work, f"map-{t.name}")]
+        done_info = {t.name: RunStore.unit_info(work, f"map-{t.name}") for t in tasks if t not in todo}
+        results = _guard(lambda: eng.map(_map_unit, todo, cols, window, labels, info["kind"], n_buckets,
+                                         p["on_invalid"], str(work), desc="ingest: map"))
+    failed = [r for r in results if r["failed"]]
+    counts = _sum_counts([r["counts"] for r in results] + [d["counts"] for d in done_info.values()])
+    if failed:
+        ex = [e for r in failed for e in r["examples"]][:3]
+        reasons = ", ".join(f"{counts[k]} {k.replace('_weight', '').replace('_', '-')}"
+                            for k in ("nan_weight", "inf_weight", "negative_weight", "non_numeric_weight") if counts[k])
+        raise InputError(
+            f"{failed[0]['path']}: column {cols.weight!r} has {counts['invalid_weight']} invalid weight"
+            f"{'s' if counts['invalid_weight'] != 1 else ''} ({reasons}) in {len(failed)} file part"
+            f"{'s' if len(failed) > 1 else ''}, e.g. {'; '.join(ex)}; fix them or pass --on-invalid drop")
+    ctx.worker_cpu += sum(r.get("cpu", 0.0) for r in results)
+
+    # 3. aggregate buckets -----------------------------------------------------------
+    bounds = parts_bounds(n_nodes, n_buckets)
+    edges_dir = work / "edges"
+    with ctx.substep("aggregate"):
+        jobs = [b for b in range(n_buckets) if not RunStore.unit_done(work, f"agg-{b:05d}")]
+        agg = _guard(lambda: eng.map(_agg_unit, jobs, bounds, str(work), [t.name for t in tasks], p["merge"],
+                                     desc="ingest: aggregate"))
+        agg_info = {a["bucket"]: a for a in agg}
+        for b in range(n_buckets):
+            if b not in agg_info:
+                agg_info[b] = RunStore.unit_info(work, f"agg-{b:05d}")
+    ctx.worker_cpu += sum(a.get("cpu", 0.0) for a in agg)
+    shutil.rmtree(scratch, ignore_errors=True)
+
+    pairs = sum(a["pairs"] for a in agg_info.values())
+    rows_into_merge = sum(a["rows_in"] for a in agg_info.values())
+    dropped = {k: counts[k] for k in ("outside_window", "null_label", "invalid_weight", "self_loop", "zero_weight")}
+    report = {
+        "files": len(files),
+        "read_tasks": len(tasks),
+        "rows_read": counts["rows_read"],
+        "rows_kept": counts["rows_kept"],
+        "rows_dropped": dropped,
+        "rows_dropped_total": sum(dropped.values()),
+        "invalid_weight_detail": {k: counts[k] for k in ("nan_weight", "inf_weight", "negative_weight", "non_numeric_weight")},
+        "rows_merged": rows_into_merge - pairs,
+        "pairs": pairs,
+        "nodes": n_nodes,
+        "label_kind": info["kind"],
+        "labels_mixed_int_and_text": info["mixed"],
+        "weight_total": float(sum(a["weight_total"] for a in agg_info.values())),
+        "weights_integral": all(a["integral"] for a in agg_info.values()),
+        "weight_min": min((a["w_min"] for a in agg_info.values() if a["w_min"] is not None), default=None),
+        "weight_max": max((a["w_max"] for a in agg_info.values() if a["w_max"] is not None), default=None),
+        "merge": p["merge"],
+        "buckets": n_buckets,
+        "examples_dropped": [e for r in results for e in r["examples"]][:5],
+    }
+    if report["rows_read"] != report["rows_kept"] + report["rows_dropped_total"]:
+        raise RuntimeError(f"internal accounting error: {report}")
+    if rows_into_merge != counts["rows_kept"]:
+        raise RuntimeError("internal accounting error: rows lost between map and aggregate")
+    if pairs == 0:
+        raise InputError(
+            f"{files[0]}: no usable interaction left after reading {report['rows_read']} rows "
+            f"(dropped: {', '.join(f'{v} {k}' for k, v in dropped.items() if v) or 'none; the input is empty'})")
+    write_json_atomic(work / "report.json", report)
+    return {"rows_read": report["rows_read"], "rows_kept": report["rows_kept"], "pairs": pairs,
+            "nodes": n_nodes, "rows_dropped": report["rows_dropped_total"], "buckets": n_buckets}
+
+
+def parts_bounds(n_nodes: int, n_buckets: int) -> list[int]:
+    from cliquewise.kernels.buckets import bucket_bounds
+
+    return [int(x) for x in bucket_bounds(max(n_nodes, 1), n_buckets)]
+
+
+def _map_unit(task, cols, window, labels, kind, n_buckets, on_invalid, work):
+    from pathlib import Path
+
+    work = Path(work)
+    res = parts.map_and_bucket(task, cols, window, labels, kind, n_buckets, on_invalid, work / "scratch")
+    if not res["failed"]:
+        RunStore.unit_commit(work, f"map-{task.name}", [f"scratch/{f}" for f in res["files"]],
+                             {"counts": res["counts"], "examples": res["examples"]})
+    return res
+
+
+def _agg_unit(b, bounds, work, task_names, merge):
+    from pathlib import Path
+
+    work = Path(work)
+    rel = f"edges/part-{b:05d}.parquet"
+    res = parts.aggregate_bucket(b, bounds[b], bounds[b + 1], work / "scratch", task_names, merge, work / rel)
+    RunStore.unit_commit(work, f"agg-{b:05d}", [rel], res)
+    return res
+
+
+def _tree_reduce(eng, scans: list[dict]) -> dict:
+    """Merge per-task label sets pairwise (on the cluster when there are many)."""
+    if not scans:
+        return {"labels": pa.array([], pa.int64()), "kind": "int", "nulls": 0}
+    level = scans
+    while len(level) > 1:
+        pairs = [(level[i], level[i + 1]) for i in range(0, len(level) - 1, 2)]
+        merged = eng.map(_union_pair, pairs)
+        if len(level) % 2:
+            merged.append(level[-1])
+        level = merged
+    out = dict(level[0])
+    out.setdefault("mixed", False)
+    return out
+
+
+def _union_pair(pair):
+    return parts.union_labels(*pair)
+
+
+def _sum_counts(dicts: list[dict]) -> dict:
+    out: dict[str, int] = {}
+    for d in dicts:
+        for k, v in d.items():
+            out[k] = out.get(k, 0) + int(v)
+    for k in ("rows_read", "rows_kept", "outside_window", "null_label", "invalid_weight", "self_loop", "zero_weight",
+              "nan_weight", "inf_weight", "negative_weight", "non_numeric_weight"):
+        out.setdefault(k, 0)
+    return out
+
+
+def _guard(fn):
+    try:
+        return fn()
+    except parts.ExportError as exc:
+        raise InputError(str(exc)) from None
+
+
+def read_report(stage_dir) -> dict:
+    with open(stage_dir / "report.json", encoding="utf-8") as fh:
+        return json.load(fh)

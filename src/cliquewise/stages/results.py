@@ -1,0 +1,107 @@
+"""The results stage: the tables users and tests read (see ``docs/outputs.md``).
+
+Reads   ``ingest/labels.parquet``, ``ingest/report.json``, ``split/nodes.parquet``,
+        ``enumerate/*.npy``, ``fit/mu.npy``, ``fit/report.json``.
+Writes  ``results/nodes.parquet``    node_id, label, component, degree, strength
+        ``results/cliques.parquet``  clique_id, size, intensity, expected_weight, share,
+                                     level_min, level_max
+        ``results/members.parquet``  clique_id, node_id, label
+        ``results/summary.json``     counts, log-likelihood, iterations, convergence, timings
+
+``clique_id`` orders candidates by expected weight, strongest first (ties by
+candidate order), so ``clique_id < N`` are the N strongest groups.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from cliquewise.stage import StageContext
+from cliquewise.store import load_npy, read_json, write_json_atomic
+
+NAME = "results"
+UPSTREAM = ["ingest", "split", "enumerate", "fit"]
+CAUTION = ("The model describes patterns of interaction, not intent or wrongdoing. A group here is a set of "
+           "people who interact more than the rest of the network explains; findings about people need "
+           "human review under local law and policy before any decision is based on them.")
+
+
+def params_from(settings) -> dict:
+    return {}
+
+
+def run(ctx: StageContext) -> dict:
+    ing, spl = ctx.input_dir("ingest"), ctx.input_dir("split")
+    enu, fit = ctx.input_dir("enumerate"), ctx.input_dir("fit")
+    out = ctx.work
+    labels = pq.read_table(ing / "labels.parquet").column("label").combine_chunks()
+    with ctx.substep("nodes"):
+        nodes = pq.read_table(spl / "nodes.parquet")
+        table = pa.table({
+            "node_id": nodes.column("node_id"),
+            "label": labels,
+            "component": nodes.column("component"),
+            "degree": nodes.column("degree"),
+            "strength": nodes.column("strength"),
+        })
+        pq.write_table(table, out / "nodes.parquet", compression="zstd")
+    with ctx.substep("cliques"):
+        ptr = load_npy(enu / "cand_ptr.npy")
+        members = load_npy(enu / "cand_nodes.npy")
+        levels = load_npy(enu / "levels.npy")
+        lmin = load_npy(enu / "level_min.npy")
+        lmax = load_npy(enu / "level_max.npy")
+        mu = load_npy(fit / "mu.npy")
+        size = np.diff(ptr)
+        P = size * (size - 1) / 2.0
+        expected = mu * P
+        total = float(expected.sum())
+        order = np.lexsort((np.arange(len(mu)), -expected))  # strongest first, stable
+        rank = np.empty_like(order)
+        rank[order] = np.arange(len(order))
+        pq.write_table(pa.table({
+            "clique_id": pa.array(np.arange(len(mu), dtype=np.int64)),
+            "size": pa.array(size[order].astype(np.int64)),
+            "intensity": pa.array(mu[order]),
+            "expected_weight": pa.array(expected[order]),
+            "share": pa.array(expected[order] / total if total > 0 else np.zeros(len(mu))),
+            "level_min": pa.array(levels[lmin[order]] if len(levels) else np.zeros(len(mu))),
+            "level_max": pa.array(levels[lmax[order]] if len(levels) else np.zeros(len(mu))),
+        }), out / "cliques.parquet", compression="zstd")
+    with ctx.substep("members"):
+        cand_of_row = np.repeat(np.arange(len(size), dtype=np.int64), size)
+        cid = rank[cand_of_row]
+        o = np.lexsort((members, cid))
+        mem_nodes = members[o].astype(np.int64)
+        pq.write_table(pa.table({
+            "clique_id": pa.array(cid[o]),
+            "node_id": pa.array(mem_nodes),
+            "label": labels.take(pa.array(mem_nodes)),
+        }), out / "members.parquet", compression="zstd", row_group_size=1 << 20)
+    ing_report = read_json(ing / "report.json")
+    fit_report = read_json(fit / "report.json")
+    timings = {}
+    for st in ("ingest", "split", "enumerate", "fit"):
+        man = ctx.store.manifest(st)
+        timings[st] = {k: man["profile"][k] for k in ("wall_seconds", "cpu_seconds", "peak_rss_bytes")}
+    summary = {
+        "nodes": int(len(labels)),
+        "edges": int(ing_report["pairs"]),
+        "rows_read": ing_report["rows_read"],
+        "rows_dropped": ing_report["rows_dropped"],
+        "weight_total": ing_report["weight_total"],
+        "levels": int(len(levels)),
+        "candidates": int(len(mu)),
+        "groups_kept": fit_report["groups_kept"],
+        "redundancy": fit_report["redundancy"],
+        "loglik": fit_report["loglik"],
+        "iterations": fit_report["iterations"],
+        "converged": fit_report["converged"],
+        "fitted_total": fit_report["fitted_total"],
+        "timings": timings,
+        "caution": CAUTION,
+    }
+    write_json_atomic(out / "summary.json", summary)
+    return {"cliques": int(len(mu)), "groups_kept": summary["groups_kept"], "member_rows": int(len(members))}

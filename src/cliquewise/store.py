@@ -1,0 +1,319 @@
+"""The run store: one folder per stage, each made complete by its manifest.
+
+Layout of a run directory::
+
+    RUN/
+      run.json                 what was asked for (the resolved pipeline settings)
+      ingest/                  a finished stage: outputs + manifest.json
+      split/ ...
+      .work/<stage>-<key>/     a stage in progress (outputs and unit checkpoints)
+
+A stage writes everything into ``.work/<stage>-<key>/`` where ``key`` is derived from
+its parameters and the identities of its upstream stages. When all outputs are
+written it renames that folder to ``RUN/<stage>/`` (replacing an older one) and only
+then writes ``manifest.json`` atomically. The manifest is the completion marker: a
+stage folder without a valid manifest is never used.
+
+A manifest records the parameters and their hash, upstream identities, input
+fingerprints, every output file with its size and BLAKE2b checksum, wall and CPU
+seconds, peak RSS, and work counts. Its ``identity`` hashes parameters, upstream
+identities and output checksums, so a stage recomputed to the same bytes keeps its
+downstream valid, and any change upstream invalidates everything below it.
+
+Long stages checkpoint inside: a *unit* (one work item) writes its files into the
+work folder and then a small JSON marker with their checksums; on resume, units
+whose markers verify are reused. No pickle anywhere: Parquet, JSON and ``.npy``
+(loaded with ``allow_pickle=False``).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import shutil
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterable
+
+import numpy as np
+
+MANIFEST = "manifest.json"
+FORMAT_VERSION = 1
+
+
+class StoreError(RuntimeError):
+    """A run directory is unusable as it stands (the message says what to do)."""
+
+
+def canonical_json(obj: Any) -> str:
+    """Deterministic JSON text (sorted keys, no whitespace) for hashing."""
+    return json.dumps(obj, sort_keys=True, separators=(",", ":"), default=_json_default)
+
+
+def _json_default(obj):
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (np.floating,)):
+        return float(obj)
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, Path):
+        return str(obj)
+    raise TypeError(f"not JSON serialisable: {type(obj).__name__}")
+
+
+def digest(text: str | bytes) -> str:
+    """Short hex BLAKE2b digest of text."""
+    if isinstance(text, str):
+        text = text.encode()
+    return hashlib.blake2b(text, digest_size=16).hexdigest()
+
+
+def file_checksum(path: Path, chunk: int = 1 << 22) -> str:
+    """BLAKE2b checksum of a file's bytes."""
+    h = hashlib.blake2b(digest_size=16)
+    with open(path, "rb") as fh:
+        while True:
+            block = fh.read(chunk)
+            if not block:
+                break
+            h.update(block)
+    return h.hexdigest()
+
+
+def write_json_atomic(path: Path, obj: Any) -> None:
+    """Write JSON to ``path`` through a temporary file and an atomic rename."""
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    with open(tmp, "w", encoding="utf-8") as fh:
+        json.dump(obj, fh, indent=1, sort_keys=True, default=_json_default)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+
+
+def read_json(path: Path) -> Any:
+    with open(path, encoding="utf-8") as fh:
+        return json.load(fh)
+
+
+def save_npy(path: Path, arr: np.ndarray) -> None:
+    """Save an array as ``.npy`` (never object dtype, so never pickled)."""
+    arr = np.asarray(arr)
+    if arr.dtype == object:
+        raise TypeError("object arrays are not stored (they would need pickle)")
+    with open(path, "wb") as fh:
+        np.save(fh, arr, allow_pickle=False)
+
+
+def load_npy(path: Path, mmap: bool = False) -> np.ndarray:
+    return np.load(path, allow_pickle=False, mmap_mode="r" if mmap else None)
+
+
+def describe_outputs(folder: Path) -> dict[str, dict]:
+    """Size and checksum of every file below ``folder`` (manifest excluded)."""
+    out = {}
+    for p in sorted(folder.rglob("*")):
+        if p.is_file() and p.name != MANIFEST and not p.name.startswith("."):
+            rel = p.relative_to(folder).as_posix()
+            out[rel] = {"bytes": p.stat().st_size, "checksum": file_checksum(p)}
+    return out
+
+
+@dataclass
+class Manifest:
+    stage: str
+    params: dict
+    upstream: dict[str, str]
+    inputs: list = field(default_factory=list)
+    outputs: dict = field(default_factory=dict)
+    counts: dict = field(default_factory=dict)
+    profile: dict = field(default_factory=dict)
+    identity: str = ""
+    key: str = ""
+    version: int = FORMAT_VERSION
+
+    def to_dict(self) -> dict:
+        return {
+            "version": self.version,
+            "stage": self.stage,
+            "key": self.key,
+            "identity": self.identity,
+            "params": self.params,
+            "params_hash": digest(canonical_json(self.params)),
+            "upstream": self.upstream,
+            "inputs": self.inputs,
+            "outputs": self.outputs,
+            "counts": self.counts,
+            "profile": self.profile,
+        }
+
+
+def stage_key(stage: str, params: dict, upstream: dict[str, str], inputs: list) -> str:
+    """What a stage's result depends on, before it runs."""
+    return digest(canonical_json({"stage": stage, "params": params, "upstream": upstream, "inputs": inputs}))
+
+
+class RunStore:
+    """A run directory. Stages ask it whether they are done and hand it their outputs."""
+
+    def __init__(self, root: str | os.PathLike, create: bool = True):
+        self.root = Path(root).resolve()
+        if create:
+            try:
+                self.root.mkdir(parents=True, exist_ok=True)
+                (self.root / ".work").mkdir(exist_ok=True)
+            except OSError as exc:
+                raise StoreError(f"cannot create run directory {self.root}: {exc.strerror}") from exc
+            if not os.access(self.root, os.W_OK):
+                raise StoreError(f"run directory {self.root} is not writable")
+        elif not self.root.is_dir():
+            raise StoreError(f"no run directory at {self.root}")
+
+    # -- paths ---------------------------------------------------------------
+    def stage_dir(self, stage: str) -> Path:
+        return self.root / stage
+
+    def work_dir(self, stage: str, key: str) -> Path:
+        return self.root / ".work" / f"{stage}-{key}"
+
+    # -- reading -------------------------------------------------------------
+    def manifest(self, stage: str) -> dict | None:
+        """The stage's manifest if present and parseable, else ``None``."""
+        path = self.stage_dir(stage) / MANIFEST
+        try:
+            data = read_json(path)
+        except (OSError, ValueError):
+            return None
+        if not isinstance(data, dict) or data.get("stage") != stage:
+            return None
+        return data
+
+    def verify(self, stage: str, key: str | None = None, checksums: bool = True) -> tuple[bool, str]:
+        """Check a finished stage: manifest valid, key matches, every output intact.
+
+        Returns ``(ok, reason)``; ``reason`` says what is wrong when not ok.
+        """
+        man = self.manifest(stage)
+        if man is None:
+            if self.stage_dir(stage).exists():
+                return False, "stage folder has no valid manifest (half-written or edited)"
+            return False, "not run yet"
+        if man.get("version") != FORMAT_VERSION:
+            return False, "manifest from another format version"
+        if key is not None and man.get("key") != key:
+            return False, "parameters or upstream changed"
+        expected = digest(canonical_json({"key": man.get("key"), "outputs": man.get("outputs")}))
+        if man.get("identity") != expected:
+            return False, "manifest was edited (identity does not match its contents)"
+        if digest(canonical_json(man.get("params"))) != man.get("params_hash"):
+            return False, "manifest was edited (parameters do not match their hash)"
+        folder = self.stage_dir(stage)
+        for rel, info in man.get("outputs", {}).items():
+            p = folder / rel
+            if not p.is_file():
+                return False, f"output {rel} is missing"
+            if p.stat().st_size != info["bytes"]:
+                return False, f"output {rel} has the wrong size (truncated or altered)"
+            if checksums and file_checksum(p) != info["checksum"]:
+                return False, f"output {rel} fails its checksum (altered)"
+        return True, "complete"
+
+    def identity(self, stage: str) -> str:
+        man = self.manifest(stage)
+        if man is None:
+            raise StoreError(f"stage {stage!r} has not completed in {self.root}")
+        return man["identity"]
+
+    # -- writing -------------------------------------------------------------
+    def begin(self, stage: str, key: str) -> Path:
+        """The work folder for a stage attempt (kept across crashes for unit reuse)."""
+        work = self.work_dir(stage, key)
+        work.mkdir(parents=True, exist_ok=True)
+        # earlier attempts with other keys can never be reused: remove them
+        for old in (self.root / ".work").glob(f"{stage}-*"):
+            if old != work and old.is_dir():
+                shutil.rmtree(old, ignore_errors=True)
+        return work
+
+    def commit(self, manifest: Manifest, work: Path, keep: Iterable[str] = ()) -> dict:
+        """Move a finished work folder into place and write its manifest last."""
+        for sub in ("units",):  # unit checkpoints are not part of the outputs
+            if sub not in keep and (work / sub).exists():
+                shutil.rmtree(work / sub)
+        manifest.outputs = describe_outputs(work)
+        manifest.identity = digest(canonical_json({"key": manifest.key, "outputs": manifest.outputs}))
+        final = self.stage_dir(manifest.stage)
+        if final.exists():
+            trash = self.root / ".work" / f"old-{manifest.stage}-{time.time_ns()}"
+            os.replace(final, trash)
+            shutil.rmtree(trash, ignore_errors=True)
+        os.replace(work, final)
+        data = manifest.to_dict()
+        _fault_point(f"before-manifest:{manifest.stage}")
+        write_json_atomic(final / MANIFEST, data)
+        _fault_point(f"stage:{manifest.stage}")
+        return data
+
+    def invalidate(self, stage: str) -> None:
+        """Remove a stage's manifest so it and everything downstream reruns."""
+        try:
+            (self.stage_dir(stage) / MANIFEST).unlink()
+        except FileNotFoundError:
+            pass
+
+    # -- unit checkpoints ----------------------------------------------------
+    @staticmethod
+    def unit_done(work: Path, unit: str) -> bool:
+        """True when unit ``unit`` in ``work`` finished and its files verify."""
+        marker = work / "units" / f"{unit}.json"
+        try:
+            info = read_json(marker)
+        except (OSError, ValueError):
+            return False
+        for rel, meta in info.get("files", {}).items():
+            p = work / rel
+            if not p.is_file() or p.stat().st_size != meta["bytes"] or file_checksum(p) != meta["checksum"]:
+                return False
+        return True
+
+    @staticmethod
+    def unit_commit(work: Path, unit: str, files: Iterable[str], extra: dict | None = None) -> None:
+        """Mark unit ``unit`` finished, recording its files' checksums."""
+        (work / "units").mkdir(exist_ok=True)
+        info = {"files": {}, "extra": extra or {}}
+        for rel in files:
+            p = work / rel
+            info["files"][rel] = {"bytes": p.stat().st_size, "checksum": file_checksum(p)}
+        write_json_atomic(work / "units" / f"{unit}.json", info)
+        _fault_point(f"unit:{unit}")
+
+    @staticmethod
+    def unit_info(work: Path, unit: str) -> dict:
+        return read_json(work / "units" / f"{unit}.json").get("extra", {})
+
+
+# -- fault injection (tests only) ----------------------------------------------
+#
+# ``CLIQUEWISE_FAULT="PREFIX[@N]"`` makes the process kill itself with SIGKILL the
+# N-th time (default 1st) it passes a checkpoint whose name starts with PREFIX:
+# ``unit:<unit name>`` after a unit checkpoint, ``before-manifest:<stage>`` after a
+# stage folder is moved into place but before its manifest, ``stage:<stage>`` after
+# a stage completes. The crash tests use it to kill runs at exact points.
+_fault_hits: dict[str, int] = {}
+
+
+def _fault_point(name: str) -> None:
+    spec = os.environ.get("CLIQUEWISE_FAULT")
+    if not spec:
+        return
+    prefix, _, nth = spec.partition("@")
+    if not name.startswith(prefix):
+        return
+    _fault_hits[prefix] = _fault_hits.get(prefix, 0) + 1
+    if _fault_hits[prefix] >= int(nth or 1):
+        import signal
+
+        os.kill(os.getpid(), signal.SIGKILL)
