@@ -121,13 +121,13 @@ def test_event_log_window_matches_pandas(tmp_path, monkeypatch):
     assert rc == 0, err
     got = read_edges(tmp_path / "run")
     # reference: plain pandas groupby over the window [since, until)
-    w = ev[(ev.at >= since) & (ev.at < until) & (ev.caller != ev.callee)]
+    w = ev[(ev["at"] >= since) & (ev["at"] < until) & (ev.caller != ev.callee)]
     key = [tuple(sorted(t)) for t in zip(w.caller, w.callee)]
     ref = pd.Series(1.0, index=pd.MultiIndex.from_tuples(key)).groupby(level=[0, 1]).sum()
     mine = got.set_index(["a", "b"]).weight
     pd.testing.assert_series_equal(mine.sort_index(), ref.sort_index(), check_names=False)
     rep = json.loads((tmp_path / "run" / "ingest" / "report.json").read_text())
-    assert rep["rows_dropped"]["outside_window"] == int(((ev.at < since) | (ev.at >= until)).sum())
+    assert rep["rows_dropped"]["outside_window"] == int(((ev["at"] < since) | (ev["at"] >= until)).sum())
 
 
 def test_large_and_fractional_weights_are_exact(tmp_path, monkeypatch):

@@ -178,7 +178,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--version", action="version", version=f"cliquewise {__version__}")
     p.add_argument("--debug", action="store_true", help="show tracebacks and debug logging")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show tracebacks")
+    common.add_argument("--quiet", action="store_true", default=argparse.SUPPRESS, help="no progress bars")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
+    _orig_add = sub.add_parser
+
+    def add_parser(name, **kw):
+        return _orig_add(name, parents=[common], **kw)
+
+    sub.add_parser = add_parser
 
     r = sub.add_parser("run", help="run the whole job on an export")
     _add_run_options(r)

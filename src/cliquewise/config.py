@@ -145,7 +145,7 @@ def _apply(obj, data: dict, prefix: str) -> None:
     for key, value in data.items():
         if key not in names:
             known = ", ".join(sorted(names))
-            raise ConfigError(f"unknown setting {prefix}{key!r} (known here: {known})")
+            raise ConfigError(f"unknown setting '{prefix}{key}' (known here: {known})")
         current = getattr(obj, key)
         if dataclasses.is_dataclass(current):
             if not isinstance(value, dict):

@@ -301,28 +301,36 @@ def time_mask(col, window, path, name) -> pa.Array:
 # -- weights --------------------------------------------------------------------
 
 def weights_to_float(col, path: str, name: str, examples: list, limit: int = 5):
-    """Weights as float64 plus a per-row flag of values that are not numbers at all."""
+    """Weights as float64, plus per-row flags: not a number at all, and missing.
+
+    Missing values (null, empty text) come back as NaN with ``missing`` set, and
+    are reported with NaN weights.
+    """
     if isinstance(col, pa.ChunkedArray):
         col = col.combine_chunks()
+    missing = np.array(pc.is_null(col).to_numpy(zero_copy_only=False), dtype=bool)
     if pa.types.is_integer(col.type) or pa.types.is_floating(col.type) or pa.types.is_boolean(col.type) \
             or pa.types.is_decimal(col.type):
         w = pc.cast(col, pa.float64()).to_numpy(zero_copy_only=False)
-        return w, np.asarray(pc.is_null(col).to_numpy(zero_copy_only=False))
+        return w, np.zeros(len(w), bool), missing
     if pa.types.is_string(col.type) or pa.types.is_large_string(col.type):
+        text = pc.utf8_trim_whitespace(col)
+        missing = missing | np.asarray(pc.fill_null(pc.equal(text, ""), False).to_numpy(zero_copy_only=False))
+        text = pc.if_else(pc.equal(text, ""), pa.scalar(None, pa.string()), text)
         try:
-            wcol = pc.cast(pc.utf8_trim_whitespace(col), pa.float64())
-            w = wcol.to_numpy(zero_copy_only=False)
-            return w, np.asarray(pc.is_null(col).to_numpy(zero_copy_only=False))
+            w = pc.cast(text, pa.float64()).to_numpy(zero_copy_only=False)
+            return w, np.zeros(len(w), bool), missing
         except pa.ArrowInvalid:
             import pandas as pd  # only on the error path: find which rows are not numbers
 
-            s = pd.Series(col.to_pylist(), dtype=object)
+            s = pd.Series(text.to_pylist(), dtype=object)
             num = pd.to_numeric(s, errors="coerce")
-            bad = num.isna() & s.notna() & ~s.astype(str).str.strip().str.lower().isin(["nan", "inf", "-inf", "+inf", "infinity", "-infinity"])
-            for i in np.flatnonzero(bad.to_numpy())[: max(0, limit - len(examples))]:
+            bad = np.array((num.isna() & s.notna()).to_numpy(), dtype=bool)
+            bad &= ~s.astype(str).str.lower().isin(["nan", "inf", "-inf", "+inf", "infinity", "-infinity"]).to_numpy()
+            for i in np.flatnonzero(bad)[: max(0, limit - len(examples))]:
                 examples.append(f"{name}={s.iloc[i]!r}")
             w = num.to_numpy(dtype=np.float64, na_value=np.nan)
-            return w, bad.to_numpy() | s.isna().to_numpy()
+            return w, bad, missing
     raise ExportError(f"{path}: column {name!r} has type {col.type}, not numbers")
 
 
@@ -355,7 +363,7 @@ def map_and_bucket(task: ReadTask, cols: Columns, window, labels: pa.Array, kind
         if batch.num_rows == 0:
             continue
         if cols.weight:
-            w, non_numeric = weights_to_float(batch.column(cols.weight), task.path, cols.weight, examples)
+            w, non_numeric, missing = weights_to_float(batch.column(cols.weight), task.path, cols.weight, examples)
             nan = np.isnan(w) & ~non_numeric
             inf = np.isinf(w)
             neg = w < 0
@@ -370,7 +378,7 @@ def map_and_bucket(task: ReadTask, cols: Columns, window, labels: pa.Array, kind
                 if len(examples) < 5:
                     s_py, d_py = src.to_pylist(), dst.to_pylist()
                     for i in np.flatnonzero(bad)[: 5 - len(examples)]:
-                        examples.append(f"{s_py[i]!r} -> {d_py[i]!r} weight {_fmt_w(w[i], non_numeric[i])}")
+                        examples.append(f"{s_py[i]!r} -> {d_py[i]!r} weight {_fmt_w(w[i], non_numeric[i], missing[i])}")
                 keep = ~bad
                 w = w[keep]
                 src, dst = src.filter(pa.array(keep)), dst.filter(pa.array(keep))
@@ -378,7 +386,7 @@ def map_and_bucket(task: ReadTask, cols: Columns, window, labels: pa.Array, kind
             w = np.ones(batch.num_rows, np.float64)
         a = _to_ids(src, labels, kind)
         b = _to_ids(dst, labels, kind)
-        zero = w == 0
+        zero = (w == 0) & (a != b)  # a zero-weight self-loop counts as a self-loop
         n_zero = int(zero.sum())
         if n_zero:
             nz = ~zero
@@ -410,8 +418,8 @@ def map_and_bucket(task: ReadTask, cols: Columns, window, labels: pa.Array, kind
             "files": files, "cpu": time.thread_time() - t_cpu}
 
 
-def _fmt_w(x, non_numeric) -> str:
-    return "not a number" if non_numeric else repr(float(x))
+def _fmt_w(x, non_numeric, missing) -> str:
+    return "not a number" if non_numeric else ("missing" if missing else repr(float(x)))
 
 
 def _to_ids(col, labels: pa.Array, kind: str) -> np.ndarray:

@@ -109,8 +109,9 @@ def run(ctx: StageContext, inputs: list[dict]) -> dict:
     counts = _sum_counts([r["counts"] for r in results] + [d["counts"] for d in done_info.values()])
     if failed:
         ex = [e for r in failed for e in r["examples"]][:3]
-        reasons = ", ".join(f"{counts[k]} {k.replace('_weight', '').replace('_', '-')}"
-                            for k in ("nan_weight", "inf_weight", "negative_weight", "non_numeric_weight") if counts[k])
+        words = {"nan_weight": "NaN or missing", "inf_weight": "infinite", "negative_weight": "negative",
+                 "non_numeric_weight": "non-numeric"}
+        reasons = ", ".join(f"{counts[k]} {w}" for k, w in words.items() if counts[k])
         raise InputError(
             f"{failed[0]['path']}: column {cols.weight!r} has {counts['invalid_weight']} invalid weight"
             f"{'s' if counts['invalid_weight'] != 1 else ''} ({reasons}) in {len(failed)} file part"
