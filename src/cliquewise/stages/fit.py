@@ -71,21 +71,27 @@ class DistributedStep:
 
 
 def _fit_phase(ctx, step, mu0, p, phase: str, work):
-    """One EM run with checkpoints; resumes from the phase's checkpoint when present."""
+    """One EM run with checkpoints; resumes from the phase's checkpoint when present.
+
+    The checkpoint holds the iterate at the start of an outer iteration and the
+    log-likelihood trace before it, which is all :func:`fit_em` needs to continue
+    exactly as an uninterrupted run would.
+    """
     ck_unit = f"ckpt-{phase}"
     trace0: list[float] = []
     start_iter = 0
     if RunStore.unit_done(work, ck_unit):
         info = RunStore.unit_info(work, ck_unit)
         mu0 = load_npy(work / f"ckpt-{phase}.npy")
-        trace0 = info["trace"]
-        start_iter = info["iteration"]
+        trace0 = list(info["trace"])
+        start_iter = int(info["iteration"])
+    seen = list(trace0)
 
-    def checkpoint(it, mu, ll, trace):
+    def checkpoint(it, mu, ll):
+        seen.append(float(ll))
         if p["checkpoint_every"] and it > start_iter and it % p["checkpoint_every"] == 0:
             save_npy(work / f"ckpt-{phase}.npy", mu)
-            RunStore.unit_commit(work, ck_unit, [f"ckpt-{phase}.npy"],
-                                 {"iteration": it, "trace": trace[:-1]})
+            RunStore.unit_commit(work, ck_unit, [f"ckpt-{phase}.npy"], {"iteration": it, "trace": seen[:-1]})
         return None
 
     return fit_em(step, step.loglik, mu0, tol=p["tol"], max_iter=p["max_iter"], accelerate=p["accelerate"],
