@@ -59,7 +59,7 @@ class InputSettings:
     merge: str = "sum"
     on_invalid: str = "error"
     rows_per_task: int = 4_000_000
-    rows_per_bucket: int = 8_000_000
+    rows_per_bucket: int = 2_000_000
 
 
 @dataclass

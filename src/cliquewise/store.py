@@ -16,9 +16,9 @@ stage folder without a valid manifest is never used.
 
 A manifest records the parameters and their hash, upstream identities, input
 fingerprints, every output file with its size and BLAKE2b checksum, wall and CPU
-seconds, peak RSS, and work counts. Its ``identity`` hashes parameters, upstream
-identities and output checksums, so a stage recomputed to the same bytes keeps its
-downstream valid, and any change upstream invalidates everything below it.
+seconds, peak RSS, and work counts. Its ``identity`` hashes the output checksums,
+so a stage recomputed to the same bytes (say with other partition sizes) keeps its
+downstream valid, while any change in what it wrote invalidates everything below.
 
 Long stages checkpoint inside: a *unit* (one work item) writes its files into the
 work folder and then a small JSON marker with their checksums; on resume, units
@@ -151,6 +151,11 @@ class Manifest:
         }
 
 
+def output_identity(stage: str, outputs: dict | None) -> str:
+    """What downstream stages depend on: the stage's output bytes, nothing else."""
+    return digest(canonical_json({"stage": stage, "outputs": outputs}))
+
+
 def stage_key(stage: str, params: dict, upstream: dict[str, str], inputs: list) -> str:
     """What a stage's result depends on, before it runs."""
     return digest(canonical_json({"stage": stage, "params": params, "upstream": upstream, "inputs": inputs}))
@@ -205,7 +210,7 @@ class RunStore:
             return False, "manifest from another format version"
         if key is not None and man.get("key") != key:
             return False, "parameters or upstream changed"
-        expected = digest(canonical_json({"key": man.get("key"), "outputs": man.get("outputs")}))
+        expected = output_identity(stage, man.get("outputs"))
         if man.get("identity") != expected:
             return False, "manifest was edited (identity does not match its contents)"
         if digest(canonical_json(man.get("params"))) != man.get("params_hash"):
@@ -244,7 +249,7 @@ class RunStore:
             if sub not in keep and (work / sub).exists():
                 shutil.rmtree(work / sub)
         manifest.outputs = describe_outputs(work)
-        manifest.identity = digest(canonical_json({"key": manifest.key, "outputs": manifest.outputs}))
+        manifest.identity = output_identity(manifest.stage, manifest.outputs)
         final = self.stage_dir(manifest.stage)
         if final.exists():
             trash = self.root / ".work" / f"old-{manifest.stage}-{time.time_ns()}"

@@ -22,6 +22,9 @@ def bucket_of(u, n_nodes, n_buckets):
 @numba.njit(nogil=True, cache=True)
 def scatter_by_bucket(bucket, n_buckets, u, v, w):
     """Reorder ``u, v, w`` so rows are grouped by bucket; return them and offsets."""
+    n = bucket.shape[0]
+    if u.shape[0] != n or v.shape[0] != n or w.shape[0] != n:
+        raise ValueError("bucket, u, v and w differ in length")
     counts = np.zeros(n_buckets + 1, np.int64)
     for i in range(bucket.shape[0]):
         counts[bucket[i] + 1] += 1
@@ -41,6 +44,17 @@ def scatter_by_bucket(bucket, n_buckets, u, v, w):
     return uo, vo, wo, counts
 
 
+@numba.njit(nogil=True, cache=True)
+def mark_seen(seen, ids):
+    """``seen[ids] = True``; an id outside ``seen`` is an error, never a stray write."""
+    n = seen.shape[0]
+    for i in range(ids.shape[0]):
+        x = ids[i]
+        if x < 0 or x >= n:
+            raise ValueError("label outside the range promised by the file statistics")
+        seen[x] = True
+
+
 def bucket_bounds(n_nodes: int, n_buckets: int) -> np.ndarray:
     """Node-range boundaries matching :func:`bucket_of`: bucket b owns ``[lo_b, lo_{b+1})``."""
     b = np.arange(n_buckets + 1, dtype=np.int64)
@@ -54,3 +68,78 @@ def scatter_by_bucket_reference(u, v, w, n_nodes, n_buckets):
     order = np.argsort(bucket, kind="stable")
     counts = np.concatenate([[0], np.cumsum(np.bincount(bucket, minlength=n_buckets))])
     return u[order], v[order], w[order], counts
+
+
+@numba.njit(nogil=True, cache=True)
+def order_and_bucket(a, b, w, weighted, space, n_buckets, seen, id_like):
+    """Ingest's fused row kernel: drop, orient and group one task's rows by bucket.
+
+    Drops self-loops (``a == b``) and, when ``weighted``, zero weights; orients each
+    pair as ``u = min, v = max``; places rows grouped by the bucket of ``u`` (equal
+    ranges of ``[0, space)``), keeping input order inside a bucket. When ``seen`` is
+    not empty, marks ``seen[a]`` and ``seen[b]`` for every row given (the dense-label
+    route records which labels occur). Output ids have the dtype of ``id_like`` (an
+    empty array: int32 when ``space < 2**31``, which halves the scratch files).
+
+    Returns ``u, v, w_out, offsets, n_self, n_zero`` (``w_out`` empty when not weighted).
+    """
+    n = a.shape[0]
+    if b.shape[0] != n or (weighted and w.shape[0] != n):
+        raise ValueError("a, b and w differ in length")
+    mark = seen.shape[0] > 0
+    counts = np.zeros(n_buckets + 1, np.int64)
+    n_self = 0
+    n_zero = 0
+    for i in range(n):
+        x = a[i]
+        y = b[i]
+        if x < 0 or y < 0 or x >= space or y >= space:
+            raise ValueError("node id outside [0, space)")
+        if mark:
+            seen[x] = True
+            seen[y] = True
+        if x == y:
+            n_self += 1
+            continue
+        if weighted and w[i] == 0.0:
+            n_zero += 1
+            continue
+        lo = x if x < y else y
+        counts[(lo * n_buckets) // space + 1] += 1
+    for k in range(n_buckets):
+        counts[k + 1] += counts[k]
+    m = counts[n_buckets]
+    u = np.empty(m, id_like.dtype)
+    v = np.empty(m, id_like.dtype)
+    wo = np.empty(m if weighted else 0, np.float64)
+    pos = counts[:-1].copy()
+    for i in range(n):
+        x = a[i]
+        y = b[i]
+        if x == y or (weighted and w[i] == 0.0):
+            continue
+        if x > y:
+            x, y = y, x
+        k = (x * n_buckets) // space
+        p = pos[k]
+        u[p] = x
+        v[p] = y
+        if weighted:
+            wo[p] = w[i]
+        pos[k] = p + 1
+    return u, v, wo, counts, n_self, n_zero
+
+
+def order_and_bucket_reference(a, b, w, weighted, space, n_buckets):
+    """Slow twin of :func:`order_and_bucket` (without the ``seen`` marks)."""
+    a = np.asarray(a, np.int64)
+    b = np.asarray(b, np.int64)
+    self_loop = a == b
+    zero = (np.asarray(w) == 0) & ~self_loop if weighted else np.zeros(len(a), bool)
+    keep = ~self_loop & ~zero
+    u, v = np.minimum(a, b)[keep], np.maximum(a, b)[keep]
+    ww = np.asarray(w)[keep] if weighted else np.empty(0)
+    bucket = (u * n_buckets) // space
+    order = np.argsort(bucket, kind="stable")
+    offsets = np.concatenate([[0], np.cumsum(np.bincount(bucket, minlength=n_buckets))])
+    return u[order], v[order], (ww[order] if weighted else ww), offsets, int(self_loop.sum()), int(zero.sum())

@@ -29,8 +29,8 @@ import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
-from cliquewise.kernels.aggregate import aggregate_pairs, order_pairs
-from cliquewise.kernels.buckets import bucket_of, scatter_by_bucket
+from cliquewise.kernels.aggregate import aggregate_pairs
+from cliquewise.kernels.buckets import mark_seen, order_and_bucket
 from cliquewise.store import load_npy, save_npy
 
 PARQUET_SUFFIXES = (".parquet", ".pq", ".parq")
@@ -334,18 +334,63 @@ def weights_to_float(col, path: str, name: str, examples: list, limit: int = 5):
     raise ExportError(f"{path}: column {name!r} has type {col.type}, not numbers")
 
 
-def map_and_bucket(task: ReadTask, cols: Columns, window, labels: pa.Array, kind: str,
-                   n_buckets: int, on_invalid: str, scratch: Path) -> dict:
-    """Map one task's rows to ordered id pairs, grouped by bucket, written to ``scratch``."""
+def dense_range(tasks: list[ReadTask], cols: Columns, rows: int) -> tuple[int, int] | None:
+    """``(lowest, count)`` of integer labels, from Parquet statistics, when dense enough.
+
+    When every file is Parquet with integer label columns and min/max statistics,
+    and the label range is at most ``max(8 * rows, 2**24)`` (and below 2**27), ids
+    can be assigned without a separate pass over the labels: rows are mapped to
+    ``label - lowest``, aggregated in that space, and renumbered by rank at the end.
+    """
+    lo, hi = None, None
+    for t in tasks:
+        if t.kind != "parquet":
+            return None
+        pf = pq.ParquetFile(t.path)
+        schema = pf.schema_arrow
+        for c in (cols.source, cols.target):
+            if c not in schema.names or not pa.types.is_integer(schema.field(c).type):
+                return None
+        meta = pf.metadata
+        idx = [schema.get_field_index(c) for c in (cols.source, cols.target)]
+        for g in t.row_groups:
+            rg = meta.row_group(g)
+            for i in idx:
+                st = rg.column(i).statistics
+                if rg.num_rows == 0:
+                    continue
+                if st is None or not st.has_min_max:
+                    return None
+                lo = st.min if lo is None else min(lo, st.min)
+                hi = st.max if hi is None else max(hi, st.max)
+    if lo is None:
+        return None
+    size = int(hi) - int(lo) + 1
+    if size > max(8 * rows, 2**24) or size >= 2**27:
+        return None
+    return int(lo), size
+
+
+def map_and_bucket(task: ReadTask, cols: Columns, window, mapper: dict, n_buckets: int, on_invalid: str,
+                   scratch: Path) -> dict:
+    """Map one task's rows to ordered id pairs, grouped by bucket, written to ``scratch``.
+
+    ``mapper`` is ``{"kind": "table", "labels": ..., "label_kind": "int"|"str"}`` (ids are
+    positions in the sorted label table) or ``{"kind": "range", "base": b, "size": n}``
+    (ids are ``label - b``; the labels seen are recorded as a bitmap).
+    """
     t_cpu = time.thread_time()
-    n_nodes = len(labels)
+    dense = mapper["kind"] == "range"
+    space = mapper["size"] if dense else len(mapper["labels"])
+    seen = np.zeros(space, np.bool_) if dense else None
     wanted = [cols.source, cols.target] + ([cols.weight] if cols.weight else []) + ([cols.time] if cols.time else [])
     counts = dict(rows_read=0, outside_window=0, null_label=0, invalid_weight=0, nan_weight=0,
                   inf_weight=0, negative_weight=0, non_numeric_weight=0, self_loop=0, zero_weight=0,
                   rows_kept=0)
     examples: list[str] = []
-    parts_u, parts_v, parts_w = [], [], []
-    id_dtype = np.int32 if n_nodes < 2**31 - 1 else np.int64
+    chunks = []
+    id_like = np.empty(0, np.int32 if space < 2**31 - 1 else np.int64)
+    weighted = bool(cols.weight)
     for batch in iter_batches(task, wanted):
         counts["rows_read"] += batch.num_rows
         if cols.time and window is not None:
@@ -355,14 +400,18 @@ def map_and_bucket(task: ReadTask, cols: Columns, window, labels: pa.Array, kind
             counts["outside_window"] += before - batch.num_rows
         src, dst = batch.column(cols.source), batch.column(cols.target)
         ok = pc.and_(pc.is_valid(src), pc.is_valid(dst))
-        n_null = batch.num_rows - pc.sum(pc.cast(ok, pa.int64())).as_py() if batch.num_rows else 0
+        n_null = src.null_count + dst.null_count
         if n_null:
+            if dense:  # every label in the window is a node, as in the label table
+                for col in (src, dst):
+                    mark_seen(seen, _dense_ids(col.drop_null(), mapper["base"]))
+            n_null = batch.num_rows - pc.sum(pc.cast(ok, pa.int64())).as_py()
             counts["null_label"] += n_null
             batch = batch.filter(ok)
             src, dst = batch.column(cols.source), batch.column(cols.target)
         if batch.num_rows == 0:
             continue
-        if cols.weight:
+        if weighted:
             w, non_numeric, missing = weights_to_float(batch.column(cols.weight), task.path, cols.weight, examples)
             nan = np.isnan(w) & ~non_numeric
             inf = np.isinf(w)
@@ -379,43 +428,81 @@ def map_and_bucket(task: ReadTask, cols: Columns, window, labels: pa.Array, kind
                     s_py, d_py = src.to_pylist(), dst.to_pylist()
                     for i in np.flatnonzero(bad)[: 5 - len(examples)]:
                         examples.append(f"{s_py[i]!r} -> {d_py[i]!r} weight {_fmt_w(w[i], non_numeric[i], missing[i])}")
+                if dense:  # labels of dropped rows are still nodes
+                    drop = pa.array(bad)
+                    for col in (src, dst):
+                        mark_seen(seen, _dense_ids(col.filter(drop), mapper["base"]))
                 keep = ~bad
                 w = w[keep]
                 src, dst = src.filter(pa.array(keep)), dst.filter(pa.array(keep))
         else:
-            w = np.ones(batch.num_rows, np.float64)
-        a = _to_ids(src, labels, kind)
-        b = _to_ids(dst, labels, kind)
-        zero = (w == 0) & (a != b)  # a zero-weight self-loop counts as a self-loop
-        n_zero = int(zero.sum())
-        if n_zero:
-            nz = ~zero
-            a, b, w = a[nz], b[nz], w[nz]
-        u, v, ww, n_self = order_pairs(a, b, w)
+            w = _NO_WEIGHTS
+        if dense:
+            a = _dense_ids(src, mapper["base"])
+            b = _dense_ids(dst, mapper["base"])
+        else:
+            a = _to_ids(src, mapper["labels"], mapper["label_kind"])
+            b = _to_ids(dst, mapper["labels"], mapper["label_kind"])
+        u, v, ww, off, n_self, n_zero = order_and_bucket(a, b, w, weighted, max(space, 1), n_buckets,
+                                                         seen if dense else _NO_SEEN, id_like)
         counts["self_loop"] += int(n_self)
         counts["zero_weight"] += int(n_zero)
         counts["rows_kept"] += len(u)
-        parts_u.append(u.astype(id_dtype, copy=False))
-        parts_v.append(v.astype(id_dtype, copy=False))
-        parts_w.append(ww)
+        chunks.append((u, v, ww, off))
     if counts["invalid_weight"] and on_invalid == "error":
         return {"counts": counts, "examples": examples, "failed": True, "task": task.name, "path": task.path,
                 "cpu": time.thread_time() - t_cpu}
-    u = np.concatenate(parts_u) if parts_u else np.empty(0, id_dtype)
-    v = np.concatenate(parts_v) if parts_v else np.empty(0, id_dtype)
-    w = np.concatenate(parts_w) if parts_w else np.empty(0, np.float64)
-    del parts_u, parts_v, parts_w
-    bucket = bucket_of(u, max(n_nodes, 1), n_buckets)
-    u, v, w, offsets = scatter_by_bucket(bucket, n_buckets, u, v, w)
-    del bucket
+    u, v, w, offsets = _merge_chunks(chunks, n_buckets, id_like, weighted)
+    del chunks
     scratch.mkdir(parents=True, exist_ok=True)
     files = []
-    for name, arr in (("u", u), ("v", v), ("w", w), ("off", offsets)):
+    arrays = [("u", u), ("v", v), ("off", offsets)] + ([("w", w)] if weighted else [])
+    if dense:
+        arrays.append(("seen", np.packbits(seen)))
+    for name, arr in arrays:
         rel = f"{task.name}.{name}.npy"
         save_npy(scratch / rel, arr)
         files.append(rel)
     return {"counts": counts, "examples": examples, "failed": False, "task": task.name, "path": task.path,
             "files": files, "cpu": time.thread_time() - t_cpu}
+
+
+_NO_WEIGHTS = np.empty(0, np.float64)
+_NO_SEEN = np.empty(0, np.bool_)
+
+
+def _merge_chunks(chunks, n_buckets, id_like, weighted):
+    """Concatenate per-batch bucketed rows into one task's rows, still grouped by bucket."""
+    if not chunks:
+        return id_like[:0].copy(), id_like[:0].copy(), _NO_WEIGHTS.copy(), np.zeros(n_buckets + 1, np.int64)
+    if len(chunks) == 1:
+        return chunks[0]
+
+    def gather(k):
+        return np.concatenate([c[k][c[3][b]:c[3][b + 1]] for b in range(n_buckets) for c in chunks])
+
+    per_bucket = sum(np.diff(c[3]) for c in chunks)
+    offsets = np.concatenate([[0], np.cumsum(per_bucket)]).astype(np.int64)
+    return gather(0), gather(1), (gather(2) if weighted else _NO_WEIGHTS.copy()), offsets
+
+
+def _dense_ids(col, base: int) -> np.ndarray:
+    if isinstance(col, pa.ChunkedArray):
+        col = col.combine_chunks()
+    x = col.cast(pa.int64()).to_numpy(zero_copy_only=False)
+    return x - base if base else x
+
+
+def combine_seen(scratch: Path, task_names: list[str], size: int, base: int) -> tuple[np.ndarray, np.ndarray]:
+    """OR the per-task label bitmaps: the sorted labels, and the rank of each slot (-1 if unused)."""
+    acc = np.zeros((size + 7) // 8, np.uint8)
+    for name in task_names:
+        acc |= load_npy(scratch / f"{name}.seen.npy")
+    seen = np.unpackbits(acc, count=size).astype(bool)
+    slots = np.flatnonzero(seen)
+    rank = np.full(size, -1, np.int64 if len(slots) >= 2**31 - 1 else np.int32)
+    rank[slots] = np.arange(len(slots), dtype=rank.dtype)
+    return slots + base, rank
 
 
 def _fmt_w(x, non_numeric, missing) -> str:
@@ -433,23 +520,32 @@ def _to_ids(col, labels: pa.Array, kind: str) -> np.ndarray:
 # -- aggregation ----------------------------------------------------------------
 
 def aggregate_bucket(b: int, lo: int, hi: int, scratch: Path, task_names: list[str], merge: str,
-                     out: Path) -> dict:
-    """Merge bucket ``b``'s rows from every task and write one edge-store partition."""
+                     out: Path, weighted: bool = True, rank_file: str | None = None) -> dict:
+    """Merge bucket ``b``'s rows from every task and write one edge-store partition.
+
+    With ``rank_file`` (the dense-label route) ids are renumbered through it after
+    merging; ranks are increasing, so the (u, v) order and ``u < v`` are kept.
+    """
     t_cpu = time.thread_time()
     us, vs, ws = [], [], []
     for name in task_names:
         off = load_npy(scratch / f"{name}.off.npy")
         s, e = int(off[b]), int(off[b + 1])
         if e > s:
-            us.append(np.asarray(load_npy(scratch / f"{name}.u.npy", mmap=True)[s:e], np.int64))
-            vs.append(np.asarray(load_npy(scratch / f"{name}.v.npy", mmap=True)[s:e], np.int64))
-            ws.append(np.asarray(load_npy(scratch / f"{name}.w.npy", mmap=True)[s:e]))
+            us.append(load_npy(scratch / f"{name}.u.npy", mmap=True)[s:e])
+            vs.append(load_npy(scratch / f"{name}.v.npy", mmap=True)[s:e])
+            if weighted:
+                ws.append(np.asarray(load_npy(scratch / f"{name}.w.npy", mmap=True)[s:e]))
     u = np.concatenate(us) if us else np.empty(0, np.int64)
     v = np.concatenate(vs) if vs else np.empty(0, np.int64)
-    w = np.concatenate(ws) if ws else np.empty(0, np.float64)
+    w = np.concatenate(ws) if ws else np.ones(len(u), np.float64)
     rows_in = len(u)
     del us, vs, ws
     u, v, w = aggregate_pairs(u, v, w, lo, hi, MERGE_CODES[merge])
+    if rank_file is not None:
+        rank = load_npy(Path(rank_file), mmap=True)
+        u = np.asarray(rank[u], np.int64)
+        v = np.asarray(rank[v], np.int64)
     table = pa.table({"u": pa.array(u, pa.int64()), "v": pa.array(v, pa.int64()), "weight": pa.array(w, pa.float64())})
     out.parent.mkdir(parents=True, exist_ok=True)
     pq.write_table(table, out, compression="zstd", row_group_size=1 << 20)

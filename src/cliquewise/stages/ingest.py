@@ -23,7 +23,7 @@ import pyarrow.parquet as pq
 
 from cliquewise.parts import ingest as parts
 from cliquewise.stage import InputError, StageContext
-from cliquewise.store import RunStore, write_json_atomic
+from cliquewise.store import RunStore, save_npy, write_json_atomic
 
 NAME = "ingest"
 UPSTREAM: list[str] = []
@@ -77,33 +77,39 @@ def run(ctx: StageContext, inputs: list[dict]) -> dict:
         except parts.ExportError as exc:
             raise InputError(str(exc)) from None
 
-    # 1. labels ------------------------------------------------------------------
-    labels_path = work / "labels.parquet"
-    with ctx.substep("labels"):
-        if RunStore.unit_done(work, "labels"):
-            table = pq.read_table(labels_path)
-            labels = table.column("label").combine_chunks()
-            info = RunStore.unit_info(work, "labels")
-        else:
-            scans = _guard(lambda: eng.map(parts.scan_labels, tasks, cols, window, desc="ingest: labels"))
-            merged = _tree_reduce(eng, scans)
-            labels = parts.sort_labels(merged["labels"])
-            table = pa.table({"node_id": pa.array(np.arange(len(labels), dtype=np.int64)), "label": labels})
-            pq.write_table(table, labels_path, compression="zstd")
-            info = {"kind": merged["kind"], "mixed": merged.get("mixed", False), "null_labels": merged["nulls"]}
-            RunStore.unit_commit(work, "labels", ["labels.parquet"], info)
-    n_nodes = len(labels)
     total_rows = sum(t.rows for t in tasks if t.rows >= 0) + sum(
         max(1, os.path.getsize(t.path) // 16) for t in tasks if t.rows < 0)
+    dense = parts.dense_range(tasks, cols, total_rows)
+
+    # 1. labels (the general route; integer labels with Parquet statistics skip it) ----
+    labels_path = work / "labels.parquet"
+    info = {"kind": "int", "mixed": False, "null_labels": 0, "route": "range" if dense else "table"}
+    if dense:
+        mapper = {"kind": "range", "base": dense[0], "size": dense[1]}
+        space = dense[1]
+    else:
+        with ctx.substep("labels"):
+            if RunStore.unit_done(work, "labels"):
+                labels = pq.read_table(labels_path).column("label").combine_chunks()
+                info = RunStore.unit_info(work, "labels")
+            else:
+                scans = _guard(lambda: eng.map(parts.scan_labels, tasks, cols, window, desc="ingest: labels"))
+                merged = _tree_reduce(eng, scans)
+                labels = parts.sort_labels(merged["labels"])
+                _write_labels(labels_path, labels)
+                info = {"kind": merged["kind"], "mixed": merged.get("mixed", False),
+                        "null_labels": merged["nulls"], "route": "table"}
+                RunStore.unit_commit(work, "labels", ["labels.parquet"], info)
+        mapper = {"kind": "table", "labels": labels, "label_kind": info["kind"]}
+        space = len(labels)
     n_buckets = max(1, min(4096, math.ceil(total_rows / max(1, p["rows_per_bucket"]))))
-    n_buckets = min(n_buckets, max(1, n_nodes))
+    n_buckets = min(n_buckets, max(1, space))
 
     # 2. map and bucket --------------------------------------------------------------
-    scratch = work / "scratch"
     with ctx.substep("map"):
         todo = [t for t in tasks if not RunStore.unit_done(work, f"map-{t.name}")]
         done_info = {t.name: RunStore.unit_info(work, f"map-{t.name}") for t in tasks if t not in todo}
-        results = _guard(lambda: eng.map(_map_unit, todo, cols, window, labels, info["kind"], n_buckets,
+        results = _guard(lambda: eng.map(_map_unit, todo, cols, window, mapper, n_buckets,
                                          p["on_invalid"], str(work), desc="ingest: map"))
     failed = [r for r in results if r["failed"]]
     counts = _sum_counts([r["counts"] for r in results] + [d["counts"] for d in done_info.values()])
@@ -117,27 +123,37 @@ def run(ctx: StageContext, inputs: list[dict]) -> dict:
             f"{'s' if counts['invalid_weight'] != 1 else ''} ({reasons}) in {len(failed)} file part"
             f"{'s' if len(failed) > 1 else ''}, e.g. {'; '.join(ex)}; fix them or pass --on-invalid drop")
     ctx.worker_cpu += sum(r.get("cpu", 0.0) for r in results)
+    rank_file = None
+    if dense:
+        with ctx.substep("labels"):
+            rank_file = work / "scratch" / "rank.npy"
+            if not RunStore.unit_done(work, "labels"):
+                labels_np, rank = parts.combine_seen(work / "scratch", [t.name for t in tasks], dense[1], dense[0])
+                save_npy(rank_file, rank)
+                del rank
+                _write_labels(labels_path, pa.array(labels_np, pa.int64()))
+                RunStore.unit_commit(work, "labels", ["labels.parquet", "scratch/rank.npy"], info)
+    n_nodes = pq.read_metadata(labels_path).num_rows
 
     # 3. aggregate buckets -----------------------------------------------------------
-    bounds = parts_bounds(n_nodes, n_buckets)
-    edges_dir = work / "edges"
+    bounds = parts_bounds(space, n_buckets)
     with ctx.substep("aggregate"):
         jobs = [b for b in range(n_buckets) if not RunStore.unit_done(work, f"agg-{b:05d}")]
         agg = _guard(lambda: eng.map(_agg_unit, jobs, bounds, str(work), [t.name for t in tasks], p["merge"],
+                                     bool(cols.weight), str(rank_file) if rank_file else None,
                                      desc="ingest: aggregate"))
         agg_info = {a["bucket"]: a for a in agg}
         for b in range(n_buckets):
             if b not in agg_info:
                 agg_info[b] = RunStore.unit_info(work, f"agg-{b:05d}")
     ctx.worker_cpu += sum(a.get("cpu", 0.0) for a in agg)
-    shutil.rmtree(scratch, ignore_errors=True)
+    shutil.rmtree(work / "scratch", ignore_errors=True)
 
     pairs = sum(a["pairs"] for a in agg_info.values())
     rows_into_merge = sum(a["rows_in"] for a in agg_info.values())
     dropped = {k: counts[k] for k in ("outside_window", "null_label", "invalid_weight", "self_loop", "zero_weight")}
     report = {
         "files": len(files),
-        "read_tasks": len(tasks),
         "rows_read": counts["rows_read"],
         "rows_kept": counts["rows_kept"],
         "rows_dropped": dropped,
@@ -147,6 +163,7 @@ def run(ctx: StageContext, inputs: list[dict]) -> dict:
         "pairs": pairs,
         "nodes": n_nodes,
         "label_kind": info["kind"],
+        "label_route": info["route"],
         "labels_mixed_int_and_text": info["mixed"],
         "weight_total": float(sum(a["weight_total"] for a in agg_info.values())),
         "weights_integral": all(a["integral"] for a in agg_info.values()),
@@ -166,7 +183,13 @@ def run(ctx: StageContext, inputs: list[dict]) -> dict:
             f"(dropped: {', '.join(f'{v} {k}' for k, v in dropped.items() if v) or 'none; the input is empty'})")
     write_json_atomic(work / "report.json", report)
     return {"rows_read": report["rows_read"], "rows_kept": report["rows_kept"], "pairs": pairs,
-            "nodes": n_nodes, "rows_dropped": report["rows_dropped_total"], "buckets": n_buckets}
+            "nodes": n_nodes, "rows_dropped": report["rows_dropped_total"], "buckets": n_buckets,
+            "read_tasks": len(tasks)}
+
+
+def _write_labels(path, labels: pa.Array) -> None:
+    table = pa.table({"node_id": pa.array(np.arange(len(labels), dtype=np.int64)), "label": labels})
+    pq.write_table(table, path, compression="zstd")
 
 
 def parts_bounds(n_nodes: int, n_buckets: int) -> list[int]:
@@ -175,23 +198,24 @@ def parts_bounds(n_nodes: int, n_buckets: int) -> list[int]:
     return [int(x) for x in bucket_bounds(max(n_nodes, 1), n_buckets)]
 
 
-def _map_unit(task, cols, window, labels, kind, n_buckets, on_invalid, work):
+def _map_unit(task, cols, window, mapper, n_buckets, on_invalid, work):
     from pathlib import Path
 
     work = Path(work)
-    res = parts.map_and_bucket(task, cols, window, labels, kind, n_buckets, on_invalid, work / "scratch")
+    res = parts.map_and_bucket(task, cols, window, mapper, n_buckets, on_invalid, work / "scratch")
     if not res["failed"]:
         RunStore.unit_commit(work, f"map-{task.name}", [f"scratch/{f}" for f in res["files"]],
                              {"counts": res["counts"], "examples": res["examples"]})
     return res
 
 
-def _agg_unit(b, bounds, work, task_names, merge):
+def _agg_unit(b, bounds, work, task_names, merge, weighted, rank_file):
     from pathlib import Path
 
     work = Path(work)
     rel = f"edges/part-{b:05d}.parquet"
-    res = parts.aggregate_bucket(b, bounds[b], bounds[b + 1], work / "scratch", task_names, merge, work / rel)
+    res = parts.aggregate_bucket(b, bounds[b], bounds[b + 1], work / "scratch", task_names, merge, work / rel,
+                                 weighted=weighted, rank_file=rank_file)
     RunStore.unit_commit(work, f"agg-{b:05d}", [rel], res)
     return res
 
