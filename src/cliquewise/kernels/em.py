@@ -65,7 +65,7 @@ __all__ = [
 
 
 @numba.njit(nogil=True, cache=True)
-def em_partial(inc_ptr, inc_cand, y, mu, acc, cand_lo=0):
+def em_partial(inc_ptr, inc_cand, y, mu, acc, cand_lo=0, want_loglik=True):
     """One fused EM sweep over a partition of the edges.
 
     For each edge ``e`` of the partition: gather ``lambda_e = sum mu_k``, add
@@ -91,6 +91,9 @@ def em_partial(inc_ptr, inc_cand, y, mu, acc, cand_lo=0):
         lie in that range.
     cand_lo : int
         Global id of the candidate stored in ``acc[0]``.
+    want_loglik : bool
+        When False the logarithms are skipped and 0.0 is returned (the middle
+        SQUAREM step never uses its log-likelihood; the log is most of the cost).
 
     Returns
     -------
@@ -103,37 +106,40 @@ def em_partial(inc_ptr, inc_cand, y, mu, acc, cand_lo=0):
     Raises
     ------
     ValueError
-        On mismatched lengths or a candidate id outside ``mu`` or ``acc``.
+        On mismatched lengths or a candidate id outside ``mu`` or ``acc`` (checked
+        in one sequential pass before the sweep, so the sweep itself is unchecked).
     """
     n_edges = y.shape[0]
     if inc_ptr.shape[0] != n_edges + 1:
         raise ValueError("inc_ptr must have len(y) + 1 entries")
     base = inc_ptr[0]
-    if inc_ptr[n_edges] - base > inc_cand.shape[0]:
+    n_inc = inc_ptr[n_edges] - base
+    if n_inc > inc_cand.shape[0]:
         raise ValueError("inc_cand is shorter than inc_ptr says")
     n_mu = mu.shape[0]
     n_acc = acc.shape[0]
+    for j in range(n_inc):
+        k = inc_cand[j]
+        if k < 0 or k >= n_mu:
+            raise ValueError("candidate id outside mu")
+        if k - cand_lo < 0 or k - cand_lo >= n_acc:
+            raise ValueError("candidate id outside the acc range")
     total = 0.0
     for i in range(n_edges):
         start = inc_ptr[i] - base
         stop = inc_ptr[i + 1] - base
-        lam = 0.0
-        for j in range(start, stop):
-            k = inc_cand[j]
-            if k < 0 or k >= n_mu:
-                raise ValueError("candidate id outside mu")
-            lam += mu[k]
         ye = y[i]
         if ye == 0.0:
             continue
+        lam = 0.0
+        for j in range(start, stop):
+            lam += mu[inc_cand[j]]
         if lam > 0.0:
-            total += ye * math.log(lam)
+            if want_loglik:
+                total += ye * math.log(lam)
             ratio = ye / lam
             for j in range(start, stop):
-                a = inc_cand[j] - cand_lo
-                if a < 0 or a >= n_acc:
-                    raise ValueError("candidate id outside the acc range")
-                acc[a] += ratio
+                acc[inc_cand[j] - cand_lo] += ratio
         else:
             total = -np.inf
     return total
@@ -353,7 +359,9 @@ def fit_em(
     ----------
     step : callable
         ``step(mu) -> (F(mu), L(mu))``: one EM step and the log-likelihood at its
-        *input*. May be a distributed map-reduce.
+        *input*. May be a distributed map-reduce. If it has a method
+        ``without_loglik(mu) -> (F(mu), anything)``, SQUAREM uses it for the middle
+        step of each cycle, whose log-likelihood is never looked at.
     loglik_fn : callable
         ``loglik_fn(mu) -> L(mu)``; called once, for the returned ``mu``.
     mu0 : float64 array
@@ -409,7 +417,7 @@ def fit_em(
         if not accelerate:
             x = x1
             continue
-        x2, _ = step(x1)
+        x2, _ = (step.without_loglik(x1) if hasattr(step, "without_loglik") else step(x1))
         n_evals += 1
         r = x1 - x
         v = x2 - 2.0 * x1 + x

@@ -1,9 +1,12 @@
 """Per-part functions of the fit stage.
 
 A *part* is a contiguous range of edges ``[lo, hi)`` of the incidence (edges in the
-edge store's order). Its candidates form a narrow id range, because candidates are
-numbered by the edge block that found them, so each part returns a short dense
-accumulator plus the offset where it starts.
+edge store's order). Once, before the EM, each part's edges are grouped into
+classes with the same candidate set (``kernels/classes.py``), which is exact for
+the EM and much shorter than the edge list. Each EM step then sweeps the class
+incidence of every part. A part's candidates form a narrow id range, because
+candidates are numbered by the edge block that found them, so each part returns a
+short dense accumulator plus the offset where it starts.
 """
 
 from __future__ import annotations
@@ -13,8 +16,9 @@ from pathlib import Path
 import numba
 import numpy as np
 
+from cliquewise.kernels.classes import edge_classes
 from cliquewise.kernels.em import em_partial
-from cliquewise.store import load_npy
+from cliquewise.store import load_npy, save_npy
 
 
 def plan_parts(inc_ptr: np.ndarray, per_part: int) -> list[tuple[int, int]]:
@@ -29,7 +33,7 @@ def plan_parts(inc_ptr: np.ndarray, per_part: int) -> list[tuple[int, int]]:
     return [(int(a), int(b)) for a, b in zip(bounds[:-1], bounds[1:])]
 
 
-def _load(enum_dir: str, lo: int, hi: int):
+def _load_edges(enum_dir: str, lo: int, hi: int):
     d = Path(enum_dir)
     inc_ptr = load_npy(d / "inc_ptr.npy", mmap=True)[lo:hi + 1]
     a, b = int(inc_ptr[0]), int(inc_ptr[-1])
@@ -38,15 +42,42 @@ def _load(enum_dir: str, lo: int, hi: int):
     return np.ascontiguousarray(inc_ptr), np.ascontiguousarray(inc_cand), np.ascontiguousarray(y)
 
 
-def em_part(rng: tuple[int, int], enum_dir: str, mu: np.ndarray) -> dict:
-    """The map of one EM step on one part: accumulator slice and ``sum y log lambda``."""
+def classes_part(index: int, rng: tuple[int, int], enum_dir: str, out_dir: str) -> dict:
+    """Group one part's edges into classes (same candidate set) and write them.
+
+    Writes ``{out_dir}/p{index:05d}.ptr/.cand/.y.npy``; returns the part's candidate
+    id range and sizes.
+    """
     lo, hi = rng
-    inc_ptr, inc_cand, y = _load(enum_dir, lo, hi)
-    if len(inc_cand) == 0:
+    inc_ptr, inc_cand, y = _load_edges(enum_dir, lo, hi)
+    cls_ptr, cls_cand, cls_y, _ = edge_classes(inc_ptr, inc_cand, y)
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    files = []
+    for name, arr in (("ptr", cls_ptr), ("cand", cls_cand), ("y", cls_y)):
+        f = out / f"p{index:05d}.{name}.npy"
+        save_npy(f, arr)
+        files.append(f.name)
+    return {"index": index, "files": files, "edges": hi - lo, "incidences": int(len(inc_cand)),
+            "classes": int(len(cls_y)), "class_incidences": int(len(cls_cand)),
+            "cand_lo": int(cls_cand.min()) if len(cls_cand) else 0,
+            "cand_hi": int(cls_cand.max()) if len(cls_cand) else -1}
+
+
+def _load_classes(cls_dir: str, index: int):
+    d = Path(cls_dir)
+    return (load_npy(d / f"p{index:05d}.ptr.npy", mmap=True), load_npy(d / f"p{index:05d}.cand.npy", mmap=True),
+            load_npy(d / f"p{index:05d}.y.npy", mmap=True))
+
+
+def em_part(part: dict, cls_dir: str, mu: np.ndarray, want_loglik: bool = True) -> dict:
+    """The map of one EM step on one part: accumulator slice and ``sum Y log lambda``."""
+    c_lo, c_hi = part["cand_lo"], part["cand_hi"]
+    if c_hi < c_lo:
         return {"cand_lo": 0, "acc": np.zeros(0), "loglik": 0.0}
-    c_lo, c_hi = int(inc_cand.min()), int(inc_cand.max())
+    ptr, cand, y = _load_classes(cls_dir, part["index"])
     acc = np.zeros(c_hi - c_lo + 1, np.float64)
-    ll = em_partial(inc_ptr, inc_cand, y, mu, acc, c_lo)
+    ll = em_partial(ptr, cand, y, mu, acc, c_lo, want_loglik)
     return {"cand_lo": c_lo, "acc": acc, "loglik": float(ll)}
 
 
@@ -71,13 +102,12 @@ def _unsupported(inc_ptr, inc_cand, mu_kept, mu_full):
     return res
 
 
-def support_part(rng, enum_dir: str, mu_kept: np.ndarray, mu_full: np.ndarray) -> np.ndarray:
-    lo, hi = rng
-    inc_ptr, inc_cand, _ = _load(enum_dir, lo, hi)
-    return _unsupported(inc_ptr, inc_cand, mu_kept, mu_full)
+def support_part(part: dict, cls_dir: str, mu_kept: np.ndarray, mu_full: np.ndarray) -> np.ndarray:
+    ptr, cand, _ = _load_classes(cls_dir, part["index"])
+    return _unsupported(np.asarray(ptr), np.asarray(cand), mu_kept, mu_full)
 
 
-def restore_support(engine, ranges, enum_dir: str, mu_kept, mu_full) -> np.ndarray:
-    """Candidate ids to un-prune so every edge keeps a positive rate."""
-    res = engine.map(support_part, ranges, enum_dir, engine.scatter(mu_kept), engine.scatter(mu_full))
+def restore_support(engine, part_list, cls_dir: str, mu_kept, mu_full) -> np.ndarray:
+    """Candidate ids to un-prune so every edge class keeps a positive rate."""
+    res = engine.map(support_part, part_list, cls_dir, engine.scatter(mu_kept), engine.scatter(mu_full))
     return np.unique(np.concatenate(res)) if res else np.empty(0, np.int64)

@@ -20,6 +20,8 @@ strongest candidate on such an edge is kept); the kept groups are then refitted.
 
 from __future__ import annotations
 
+import shutil
+
 import numpy as np
 
 from cliquewise.kernels.em import fit_em, loglik_constant, penalty
@@ -40,17 +42,17 @@ def params_from(settings) -> dict:
 class DistributedStep:
     """``step(mu) -> (EM image of mu, log-likelihood at mu)`` over the cluster."""
 
-    def __init__(self, ctx: StageContext, enum_dir, part_ranges, P):
+    def __init__(self, ctx: StageContext, cls_dir, part_list, P):
         self.ctx = ctx
-        self.enum_dir = str(enum_dir)
-        self.parts = part_ranges
+        self.cls_dir = str(cls_dir)
+        self.parts = part_list
         self.P = P
         self.evals = 0
 
-    def partial(self, mu):
+    def partial(self, mu, want_loglik=True):
         eng = self.ctx.engine
         mu_ref = eng.scatter(mu)
-        res = eng.map(parts.em_part, self.parts, self.enum_dir, mu_ref)
+        res = eng.map(parts.em_part, self.parts, self.cls_dir, mu_ref, want_loglik)
         acc = np.zeros(len(mu), np.float64)
         total = 0.0
         for r in res:  # part order: deterministic whatever the engine
@@ -64,6 +66,11 @@ class DistributedStep:
         acc, total = self.partial(mu)
         new = np.where(mu == 0.0, 0.0, mu * acc / self.P)
         return new, total - penalty(mu, self.P)
+
+    def without_loglik(self, mu):
+        self.evals += 1
+        acc, _ = self.partial(mu, want_loglik=False)
+        return np.where(mu == 0.0, 0.0, mu * acc / self.P), float("nan")
 
     def loglik(self, mu) -> float:
         _, total = self.partial(mu)
@@ -107,7 +114,16 @@ def run(ctx: StageContext) -> dict:
     P = sizes * (sizes - 1.0) / 2.0
     inc_ptr = load_npy(enum_dir / "inc_ptr.npy", mmap=True)
     ranges = parts.plan_parts(np.asarray(inc_ptr), p["incidences_per_part"])
-    step = DistributedStep(ctx, enum_dir, ranges, P)
+    cls_dir = work / "classes"
+    with ctx.substep("classes"):
+        if RunStore.unit_done(work, "classes"):
+            part_list = RunStore.unit_info(work, "classes")["parts"]
+        else:
+            part_list = ctx.engine.map(_classes_unit, list(enumerate(ranges)), str(enum_dir), str(cls_dir),
+                                       desc="fit: edge classes")
+            RunStore.unit_commit(work, "classes", [f"classes/{f}" for r in part_list for f in r["files"]],
+                                 {"parts": part_list})
+    step = DistributedStep(ctx, cls_dir, part_list, P)
 
     with ctx.substep("start"):
         acc, _ = step.partial(np.ones(len(P)))
@@ -117,7 +133,7 @@ def run(ctx: StageContext) -> dict:
     mu_full = full.mu
     with ctx.substep("prune"):
         mu = np.where(mu_full * P < p["prune"], 0.0, mu_full)
-        restore = parts.restore_support(ctx.engine, ranges, str(enum_dir), mu, mu_full)
+        restore = parts.restore_support(ctx.engine, part_list, str(cls_dir), mu, mu_full)
         mu[restore] = mu_full[restore]
         pruned = int(((mu == 0) & (mu_full > 0)).sum())
     with ctx.substep("refit"):
@@ -144,6 +160,8 @@ def run(ctx: StageContext) -> dict:
         "weight_total": float(np.sum(y)),
         "fitted_total": float(np.sum(mu * P)),
         "parts": len(ranges),
+        "edge_classes": int(sum(r["classes"] for r in part_list)),
+        "class_incidences": int(sum(r["class_incidences"] for r in part_list)),
         "accelerate": p["accelerate"],
     }
     save_npy(work / "mu.npy", mu)
@@ -153,7 +171,13 @@ def run(ctx: StageContext) -> dict:
     write_json_atomic(work / "report.json", report)
     for f in work.glob("ckpt-*.npy"):
         f.unlink()
+    shutil.rmtree(cls_dir, ignore_errors=True)
     return {k: report[k] for k in ("candidates", "groups_kept", "iterations", "converged", "loglik", "parts")}
+
+
+def _classes_unit(item, enum_dir, cls_dir):
+    index, rng = item
+    return parts.classes_part(index, rng, enum_dir, cls_dir)
 
 
 def read_report(stage_dir) -> dict:
