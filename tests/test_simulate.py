@@ -91,7 +91,7 @@ def z_dispersion(y: np.ndarray, mu: np.ndarray) -> float:
 def base(tmp_path_factory):
     """No noise, three intensity levels, integer labels: the Poisson checks."""
     out = tmp_path_factory.mktemp("base")
-    summary = simulate(out, nodes=20_000, seed=3, noise=0.0, levels=3, labels="int",
+    summary = simulate(out, nodes=20_000, seed=3, noise=0.0, levels=3, labels="int", size_range=(2, 40),
                        rows_per_partition=50_000)
     return out, summary, read_export(out)
 
@@ -312,7 +312,7 @@ def test_noise_rows_and_counts(noisy):
 
 def test_rows_per_file_bounded_and_partition_independent(tmp_path, base):
     _, ref_summary, ref = base
-    s = simulate(tmp_path / "a", nodes=20_000, seed=3, noise=0.0, levels=3, labels="int",
+    s = simulate(tmp_path / "a", nodes=20_000, seed=3, noise=0.0, levels=3, labels="int", size_range=(2, 40),
                  rows_per_partition=7_777)
     rows = [pq.ParquetFile(tmp_path / "a" / "export" / f["file"]).metadata.num_rows for f in s["files"]]
     assert rows == [f["rows"] for f in s["files"]]
@@ -320,12 +320,14 @@ def test_rows_per_file_bounded_and_partition_independent(tmp_path, base):
     assert len(rows) == math.ceil(s["rows_written"] / 7_777)
     pd.testing.assert_frame_equal(read_export(tmp_path / "a"), ref)
 
-    s = simulate(tmp_path / "b", nodes=20_000, seed=3, noise=0.0, levels=3, labels="int", partitions=3)
+    s = simulate(tmp_path / "b", nodes=20_000, seed=3, noise=0.0, levels=3, labels="int", partitions=3,
+                 size_range=(2, 40))
     assert len(s["files"]) == 3
     assert max(f["rows"] for f in s["files"]) - min(f["rows"] for f in s["files"]) <= 2
     pd.testing.assert_frame_equal(read_export(tmp_path / "b"), ref)
     # a rerun into the same folder with fewer files leaves no stale parts behind
-    s = simulate(tmp_path / "a", nodes=20_000, seed=3, noise=0.0, levels=3, labels="int", partitions=2)
+    s = simulate(tmp_path / "a", nodes=20_000, seed=3, noise=0.0, levels=3, labels="int", partitions=2,
+                 size_range=(2, 40))
     assert len(list((tmp_path / "a" / "export").glob("part-*.parquet"))) == 2
 
 

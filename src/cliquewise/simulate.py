@@ -18,10 +18,15 @@ sprinkle of background noise (random pairs, count ``1 + Poisson(0.5)``).
 What gets drawn (module constants below hold the numbers):
 
 * **Group sizes**: truncated power law ``P(s) ~ s**-SIZE_EXPONENT`` on the
-  integers of ``size_range``; with ``(2, 40)`` the mean size is about 5.3.
+  integers of ``size_range``; with the default ``(2, 20)`` the mean size is about
+  4.4. Larger groups are allowed but make candidate listing expensive: a group of
+  size 40 with a rate near 3 looks, at a threshold near its rate, like a dense
+  random graph on 40 nodes, which has thousands of maximal cliques (measured on
+  20,000 residents: 3.6 candidates and 237 incidences per edge with ``(2, 40)``,
+  1.1 and 11 with ``(2, 20)``). See docs/method.md.
 * **Group count**: ``groups`` or, by default, ``ceil(MEAN_MEMBERSHIPS * nodes /
   mean size)`` so a resident belongs to about 2.5 groups on average (about
-  ``0.47 * nodes`` groups for the default size range). Membership counts are
+  ``0.57 * nodes`` groups for the default size range). Membership counts are
   roughly Poisson, so a few residents belong to no group.
 * **Members**: distinct residents. Each group has a random centre on a ring of
   node ids; each member is, with probability ``locality``, drawn from a window of
@@ -418,7 +423,7 @@ def simulate(
     seed: int = 0,
     *,
     groups: int | None = None,
-    size_range: tuple[int, int] = (2, 40),
+    size_range: tuple[int, int] = (2, 20),
     intensity: str = "lognormal",
     levels: int | None = None,
     noise: float = 0.1,
@@ -624,7 +629,7 @@ def nodes_for_edges(target_edges: int, *, pilot_nodes: int = 50_000, **kw) -> in
         raise ValueError("nodes_for_edges scales the group count with nodes; do not pass groups")
     for ignored in ("groups", "partitions", "rows_per_partition", "labels", "events", "progress"):
         kw.pop(ignored, None)
-    opts = dict(seed=0, size_range=(2, 40), intensity="lognormal", levels=None, noise=0.1,
+    opts = dict(seed=0, size_range=(2, 20), intensity="lognormal", levels=None, noise=0.1,
                 locality=DEFAULT_LOCALITY)
     unknown = set(kw) - set(opts)
     if unknown:
