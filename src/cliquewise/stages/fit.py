@@ -113,7 +113,11 @@ def run(ctx: StageContext) -> dict:
     sizes = np.diff(cand_ptr).astype(np.float64)
     P = sizes * (sizes - 1.0) / 2.0
     inc_ptr = load_npy(enum_dir / "inc_ptr.npy", mmap=True)
-    ranges = parts.plan_parts(np.asarray(inc_ptr), p["incidences_per_part"])
+    # at least 8 parts once there is enough work, so every thread gets some; the part
+    # count depends on the data only (never on the engine), so results do not either
+    total_inc = int(inc_ptr[-1]) if len(inc_ptr) else 0
+    per_part = min(p["incidences_per_part"], max(250_000, -(-total_inc // 8)))
+    ranges = parts.plan_parts(np.asarray(inc_ptr), per_part)
     cls_dir = work / "classes"
     with ctx.substep("classes"):
         if RunStore.unit_done(work, "classes"):
