@@ -54,6 +54,8 @@ def classes_part(index: int, rng: tuple[int, int], enum_dir: str, out_dir: str) 
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     files = []
+    if len(cls_cand) and cls_cand.max() < 2**31 - 1:
+        cls_cand = cls_cand.astype(np.int32)  # half the memory traffic of the sweep
     for name, arr in (("ptr", cls_ptr), ("cand", cls_cand), ("y", cls_y)):
         f = out / f"p{index:05d}.{name}.npy"
         save_npy(f, arr)
@@ -64,10 +66,30 @@ def classes_part(index: int, rng: tuple[int, int], enum_dir: str, out_dir: str) 
             "cand_hi": int(cls_cand.max()) if len(cls_cand) else -1}
 
 
+_CLASS_CACHE: dict = {}
+_CLASS_CACHE_LIMIT = 64
+
+
 def _load_classes(cls_dir: str, index: int):
+    """A part's class arrays, kept in this process between EM steps.
+
+    Keyed by path and modification time, so a rewritten part is read again. The
+    arrays are what the fit sweeps every step anyway (memory linear in incidences).
+    """
     d = Path(cls_dir)
-    return (load_npy(d / f"p{index:05d}.ptr.npy", mmap=True), load_npy(d / f"p{index:05d}.cand.npy", mmap=True),
-            load_npy(d / f"p{index:05d}.y.npy", mmap=True))
+    files = [d / f"p{index:05d}.{n}.npy" for n in ("ptr", "cand", "y")]
+    key = (str(d), index, tuple(f.stat().st_mtime_ns for f in files))
+    hit = _CLASS_CACHE.get(key)
+    if hit is None:
+        if len(_CLASS_CACHE) >= _CLASS_CACHE_LIMIT:
+            _CLASS_CACHE.clear()
+        hit = _CLASS_CACHE[key] = tuple(load_npy(f) for f in files)
+    return hit
+
+
+def clear_cache() -> None:
+    """Forget cached class arrays (the fit stage calls this when it ends)."""
+    _CLASS_CACHE.clear()
 
 
 def em_part(part: dict, cls_dir: str, mu: np.ndarray, want_loglik: bool = True) -> dict:

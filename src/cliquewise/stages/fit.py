@@ -175,6 +175,9 @@ def run(ctx: StageContext) -> dict:
     write_json_atomic(work / "report.json", report)
     for f in work.glob("ckpt-*.npy"):
         f.unlink()
+    parts.clear_cache()
+    if not ctx.engine.in_process:
+        ctx.engine.client.run(parts.clear_cache)
     shutil.rmtree(cls_dir, ignore_errors=True)
     return {k: report[k] for k in ("candidates", "groups_kept", "iterations", "converged", "loglik", "parts")}
 
