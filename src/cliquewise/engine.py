@@ -170,7 +170,8 @@ class Engine:
     def scatter(self, data, broadcast: bool = True):
         if self.in_process:
             return data
-        return self.client.scatter(data, broadcast=broadcast)
+        # hash=False: every scatter is its own key, so releasing one never drops another
+        return self.client.scatter(data, broadcast=broadcast, hash=False)
 
     def worker_rss(self) -> int:
         """Sum of the resident memory of the worker processes (0 in-process)."""

@@ -7,7 +7,7 @@
   entry level and edge index) as ``.npy`` files that every unit memory-maps.
 * :func:`enumerate_unit` lists the candidates first seen at the edges of one edge
   block (the high-to-low sweep, see ``kernels/cliques.py``), under the blow-up
-  budget, and their ``level_min``.
+  budget (clique count, work, seconds), and their ``level_min``.
 * :func:`build_incidence` turns the candidate lists into the edge -> candidate CSR
   the fit reads.
 """
@@ -91,14 +91,15 @@ def enumerate_unit(graph_dir: str, lo: int, hi: int, max_cliques: int, max_secon
     total, work, offset = 0, 0, 0
     status, where = 0, lo
     max_work = np.int64(max(1, max_cliques) * 64)
+    deadline = t0 + max_seconds
+    at_node, at_level = -1, -1
     for s in range(lo, hi, block):
         e = min(hi, s + block)
-        ptr, nodes, lmax, st, wd = sweep_candidates(
-            g["indptr"], g["nbr"], g["nlev"], g["eid"], g["u"], g["v"], g["lev"],
-            s, e, np.int64(max_cliques - total), max_work - work)
+        (ptr, nodes, lmax, st, wd), allow = _sweep_within(g, s, e, max_cliques - total, max_work - work, deadline)
         work += int(wd)
         if st != 0:
-            status, where = int(st), s
+            status = int(st)
+            where, at_node, at_level = _stop_point(g, s, e, max_cliques - total, allow, st, ptr, nodes, lmax)
             break
         k = len(ptr) - 1
         if k:
@@ -107,11 +108,12 @@ def enumerate_unit(graph_dir: str, lo: int, hi: int, max_cliques: int, max_secon
             lmax_l.append(lmax)
             offset += int(ptr[-1])
             total += k
-        if time.perf_counter() - t0 > max_seconds:
-            status, where = 3, e
+        if time.perf_counter() > deadline and e < hi:
+            status, where = 3, e - 1
+            at_node, at_level = int(g["u"][where]), int(g["lev"][where])
             break
-    result = {"lo": lo, "hi": hi, "status": status, "at_edge": where, "work": work, "candidates": total,
-              "seconds": time.perf_counter() - t0}
+    result = {"lo": lo, "hi": hi, "status": status, "at_edge": where, "at_node": at_node, "at_level": at_level,
+              "work": work, "candidates": total, "seconds": time.perf_counter() - t0}
     if status:
         result["cpu"] = time.thread_time() - t_cpu
         return result
@@ -129,6 +131,64 @@ def enumerate_unit(graph_dir: str, lo: int, hi: int, max_cliques: int, max_secon
     result["incidences"] = int(((np.diff(ptr) * (np.diff(ptr) - 1)) // 2).sum())
     result["cpu"] = time.thread_time() - t_cpu
     return result
+
+
+# First work allowance of a block: about 0.1 s at the kernel's ~5e7 work units per
+# second (see kernels/cliques.py). Most blocks finish within it.
+FIRST_WORK = 1 << 22
+
+
+def _sweep(g: dict, s: int, e: int, cliques_left: int, work_left: int):
+    return sweep_candidates(g["indptr"], g["nbr"], g["nlev"], g["eid"], g["u"], g["v"], g["lev"],
+                            s, e, np.int64(cliques_left), np.int64(work_left))
+
+
+def _sweep_within(g: dict, s: int, e: int, cliques_left: int, work_left: int, deadline: float):
+    """:func:`sweep_candidates` on edges ``[s, e)`` under the budgets and a deadline.
+
+    The kernel has no clock, so the time budget acts through its work budget: the
+    block is tried with a small allowance (:data:`FIRST_WORK`) and, when that runs
+    out, again with the work the time left affords at the rate just measured. A
+    try that completes gives exactly what one call with the whole work budget
+    gives (the kernel is deterministic), so the candidates never depend on timing.
+    The status is 3 (time) when the time left affords no more work than a try that
+    ran short. Returns the sweep's output and the work allowance of the last try.
+    """
+    allow = min(int(work_left), FIRST_WORK)
+    while True:
+        t = time.perf_counter()
+        res = _sweep(g, s, e, cliques_left, allow)
+        if res[3] != 2 or allow >= work_left:
+            return res, allow
+        now = time.perf_counter()
+        afford = int(res[4] / max(now - t, 1e-9) * (deadline - now))
+        if afford <= allow:
+            return (res[0], res[1], res[2], 3, res[4]), allow
+        allow = min(int(work_left), max(2 * allow, afford))
+
+
+def _stop_point(g: dict, s: int, e: int, cliques_left: int, work_left: int, status: int,
+                ptr, nodes, lmax) -> tuple[int, int, int]:
+    """Edge, node and level index where a sweep of ``[s, e)`` stopped.
+
+    On a clique or work budget (status 1, 2) the block is swept again edge by edge
+    with the same budgets until the edge that exhausts them (the counts add up over
+    edges, so this is the edge where the block sweep stopped; it costs about as much
+    as the sweep that failed). On time (status 3), the edge is not known; the clique
+    listed last (or the block's first edge) stands for it.
+    """
+    if status in (1, 2):
+        k = w = 0
+        for f in range(s, e):
+            res = _sweep(g, f, f + 1, cliques_left - k, work_left - w)
+            if res[3] != 0:
+                break
+            k += len(res[0]) - 1
+            w += int(res[4])
+        return f, int(g["u"][f]), int(g["lev"][f])
+    if len(ptr) > 1:
+        return s, int(nodes[ptr[-2]]), int(lmax[-1])
+    return s, int(g["u"][s]), int(g["lev"][s])
 
 
 def concat_units(folder: Path, tags: list[str], out: Path) -> dict:

@@ -113,8 +113,7 @@ def _blow_up_error(ctx: StageContext, res: dict, gdir, p) -> BlowUpError:
     from cliquewise.kernels.cliques import degeneracy_order
 
     g = parts.load_graph(gdir)
-    e = int(res["at_edge"])
-    node = int(g["u"][min(e, len(g["u"]) - 1)])
+    node = int(res["at_node"])
     split_nodes = pq.read_table(ctx.input_dir("split") / "nodes.parquet", columns=["component"])
     comp = split_nodes.column("component").to_numpy()
     c = int(comp[node])
@@ -123,7 +122,7 @@ def _blow_up_error(ctx: StageContext, res: dict, gdir, p) -> BlowUpError:
     _, core = degeneracy_order(np.asarray(g["indptr"]), np.asarray(g["nbr"]))
     degen = int(core[members].max()) if len(members) else 0
     levels = load_npy(gdir / "levels.npy")
-    lev = float(levels[int(g["lev"][e])]) if len(levels) else float("nan")
+    lev = float(levels[int(res["at_level"])]) if len(levels) else float("nan")
     what = parts.STATUS_TEXT.get(res["status"], "budget")
     limit = {1: f"{p['max_cliques']} cliques", 2: f"{p['max_cliques'] * 64} work steps",
              3: f"{p['max_seconds']:g} s"}.get(res["status"], "")
