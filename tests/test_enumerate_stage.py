@@ -19,6 +19,7 @@ project did not write:
 from __future__ import annotations
 
 import itertools
+import json
 import tempfile
 import time
 from pathlib import Path
@@ -333,3 +334,33 @@ def test_blow_up_guard_on_seconds(tmp_path, with_karate):
     seconds = time.perf_counter() - t
     assert_stopped(tmp_path / "run", rc, err, seconds, cp, "time budget (0.5 s)")
     assert seconds < 6
+
+
+def test_clique_component_is_emitted_directly(tmp_path):
+    # a 150-node complete component at one weight level: one candidate, no search
+    # (listing it edge by edge costs about k**4); reference: networkx.find_cliques
+    import itertools
+    import time
+
+    import cliquewise
+
+    rows = [(f"c{i}", f"c{j}", 2) for i, j in itertools.combinations(range(150), 2)]
+    K = nx.karate_club_graph()  # weights shipped with networkx
+    rows += [(f"k{a}", f"k{b}", d["weight"]) for a, b, d in K.edges(data=True)]
+    df = pd.DataFrame(rows, columns=["source", "target", "weight"])
+    t0 = time.perf_counter()
+    run = cliquewise.decompose(df, tmp_path / "run", progress=False)
+    assert time.perf_counter() - t0 < 60
+    man = json.loads((tmp_path / "run" / "enumerate" / "manifest.json").read_text())
+    assert man["counts"]["direct_components"] == 1
+    mem = run.members()
+    got = {frozenset(g.label) for _, g in mem.groupby("clique_id")}
+    G = nx.Graph()
+    G.add_weighted_edges_from(rows)
+    ref = set()
+    for t in sorted({w for _, _, w in rows}):
+        H = nx.Graph([(a, b) for a, b, w in G.edges(data="weight") if w >= t])
+        ref |= {frozenset(c) for c in nx.find_cliques(H) if len(c) >= 2}
+    assert got == ref
+    big = run.cliques().iloc[0]
+    assert big["size"] == 150 and big["level_max"] == 2 and big["level_min"] == 1

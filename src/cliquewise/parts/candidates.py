@@ -93,8 +93,7 @@ def enumerate_unit(graph_dir: str, lo: int, hi: int, max_cliques: int, max_secon
     max_work = np.int64(max(1, max_cliques) * 64)
     deadline = t0 + max_seconds
     at_node, at_level = -1, -1
-    for s in range(lo, hi, block):
-        e = min(hi, s + block)
+    for s, e in _blocks(Path(graph_dir), lo, hi, block):
         (ptr, nodes, lmax, st, wd), allow = _sweep_within(g, s, e, max_cliques - total, max_work - work, deadline)
         work += int(wd)
         if st != 0:
@@ -131,6 +130,60 @@ def enumerate_unit(graph_dir: str, lo: int, hi: int, max_cliques: int, max_secon
     result["incidences"] = int(((np.diff(ptr) * (np.diff(ptr) - 1)) // 2).sum())
     result["cpu"] = time.thread_time() - t_cpu
     return result
+
+
+def _blocks(graph_dir: Path, lo: int, hi: int, block: int):
+    """Edge blocks of ``[lo, hi)`` that skip edges of directly emitted components."""
+    skip_file = graph_dir / "skip.npy"
+    if not skip_file.exists():
+        runs = [(lo, hi)]
+    else:
+        keep = ~load_npy(skip_file, mmap=True)[lo:hi]
+        edges = np.flatnonzero(np.diff(np.concatenate([[False], keep, [False]]).astype(np.int8)))
+        runs = [(lo + int(a), lo + int(b)) for a, b in zip(edges[::2], edges[1::2])]
+    for a, b in runs:
+        for s in range(a, b, block):
+            yield s, min(b, s + block)
+
+
+def direct_components(graph_dir: Path, comp: np.ndarray, comp_nodes: np.ndarray, comp_edges: np.ndarray,
+                      min_size: int, out: Path) -> dict:
+    """Emit components that are cliques with a single weight level, without a search.
+
+    Such a component is one candidate (maximal at every level up to its own, since
+    nothing outside it is adjacent), so its edges are marked in ``skip.npy`` and the
+    sweep passes over them; listing it edge by edge would cost about ``k**4`` for a
+    clique of ``k`` nodes. Only components of at least ``min_size`` nodes are
+    treated this way (smaller ones cost the sweep next to nothing).
+    """
+    g = load_graph(graph_dir)
+    u = np.asarray(g["u"])
+    lev = np.asarray(g["lev"])
+    is_clique = (comp_nodes >= max(2, min_size)) & (comp_edges == comp_nodes * (comp_nodes - 1) // 2)
+    if not is_clique.any() or len(u) == 0:
+        return {"direct": 0, "skipped_edges": 0}
+    ce = comp[u]
+    n_comp = len(comp_nodes)
+    lmin = np.full(n_comp, np.iinfo(np.int32).max, np.int64)
+    lmax = np.full(n_comp, -1, np.int64)
+    np.minimum.at(lmin, ce, lev)
+    np.maximum.at(lmax, ce, lev)
+    direct = np.flatnonzero(is_clique & (lmin == lmax))
+    if len(direct) == 0:
+        return {"direct": 0, "skipped_edges": 0}
+    chosen = np.zeros(n_comp, bool)
+    chosen[direct] = True
+    skip = chosen[ce]
+    save_npy(graph_dir / "skip.npy", skip)
+    order = np.argsort(comp, kind="stable")
+    members = order[chosen[comp[order]]]  # nodes of chosen components, grouped by component, ascending ids
+    sizes = comp_nodes[direct]
+    ptr = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
+    out.mkdir(parents=True, exist_ok=True)
+    for name, arr in (("ptr", ptr), ("nodes", members.astype(np.int64)), ("lmax", lmax[direct].astype(np.int32)),
+                      ("lmin", np.zeros(len(direct), np.int32))):
+        save_npy(out / f"direct.{name}.npy", arr)
+    return {"direct": int(len(direct)), "skipped_edges": int(skip.sum())}
 
 
 # First work allowance of a block: about 0.1 s at the kernel's ~5e7 work units per

@@ -28,6 +28,7 @@ from cliquewise.store import RunStore, load_npy
 
 NAME = "enumerate"
 UPSTREAM = ["ingest", "split"]
+DIRECT_MIN_SIZE = 8  # clique components at least this large are emitted without a search
 
 
 class BlowUpError(InputError):
@@ -58,6 +59,21 @@ def run(ctx: StageContext) -> dict:
     units = parts.plan_units(n_edges, p["edges_per_unit"])
     tags = [f"e{lo:012d}" for lo, _ in units]
 
+    with ctx.substep("direct"):  # components that are single-level cliques need no search
+        if not RunStore.unit_done(work, "direct"):
+            comps = pq.read_table(ctx.input_dir("split") / "components.parquet")
+            comp = pq.read_table(ctx.input_dir("split") / "nodes.parquet", columns=["component"]).column(0).to_numpy()
+            dinfo = parts.direct_components(gdir, comp, comps.column("nodes").to_numpy(),
+                                            comps.column("edges").to_numpy(), DIRECT_MIN_SIZE, work / "cl")
+            files = ([f"cl/direct.{n}.npy" for n in ("ptr", "nodes", "lmax", "lmin")] + ["graph/skip.npy"]
+                     if dinfo["direct"] else [])
+            RunStore.unit_commit(work, "direct", files, dinfo)
+        dinfo = RunStore.unit_info(work, "direct")
+    if dinfo["direct"]:
+        tags_all = tags + ["direct"]
+    else:
+        tags_all = tags
+
     with ctx.substep("cliques"):
         todo = [(lo, hi, tag) for (lo, hi), tag in zip(units, tags) if not RunStore.unit_done(work, f"cl-{tag}")]
         results = ctx.engine.map(_unit, todo, str(gdir), p["max_cliques"], p["max_seconds"], str(work),
@@ -69,7 +85,7 @@ def run(ctx: StageContext) -> dict:
         unit_stats = [RunStore.unit_info(work, f"cl-{t}") for t in tags]
 
     with ctx.substep("collect"):
-        cinfo = parts.concat_units(work / "cl", tags, work)
+        cinfo = parts.concat_units(work / "cl", tags_all, work)
         shutil.rmtree(work / "cl", ignore_errors=True)
 
     with ctx.substep("incidence"):
@@ -79,6 +95,7 @@ def run(ctx: StageContext) -> dict:
         raise RuntimeError(f"internal error: {iinfo['uncovered_edges']} edges lie in no candidate")
 
     # keep what the fit and the results need; drop the CSR
+    (gdir / "skip.npy").unlink(missing_ok=True)
     shutil.move(str(gdir / "levels.npy"), str(work / "levels.npy"))
     shutil.move(str(gdir / "weight.npy"), str(work / "weight.npy"))
     shutil.rmtree(gdir, ignore_errors=True)
@@ -92,6 +109,7 @@ def run(ctx: StageContext) -> dict:
         "largest_candidate": cinfo["largest_candidate"],
         "incidences": iinfo["incidences"],
         "work": int(sum(s.get("work", 0) for s in unit_stats)),
+        "direct_components": dinfo["direct"],
         "size_histogram": {str(s): int(c) for s, c in enumerate(hist) if c},
     }
 
