@@ -21,6 +21,7 @@ from cliquewise.kernels.cliques import (
     degeneracy_order_reference,
     level_max_of,
     level_min,
+    level_min_reference,
     maximal_cliques,
     maximal_cliques_reference,
     sweep_candidates,
@@ -361,3 +362,63 @@ def test_bad_arguments():
         sweep_candidates(*csr, u, v, lev, 0, len(u) + 1)
     with pytest.raises(ValueError, match="_small"):
         sweep_candidates(*csr, u, v, lev, _small=65)
+
+
+# ------------------------------------------------------------- level_min
+def sub_cliques(ptr, nodes, rng, per=2):
+    """Random non-empty subsets of the given cliques (cliques too, mostly not maximal)."""
+    out = []
+    for k in range(len(ptr) - 1):
+        c = nodes[ptr[k]:ptr[k + 1]]
+        for _ in range(per):
+            size = int(rng.integers(1, len(c) + 1))
+            out.append(np.sort(rng.choice(c, size, replace=False)))
+    p = np.zeros(len(out) + 1, np.int64)
+    p[1:] = np.cumsum([len(c) for c in out])
+    return p, (np.concatenate(out) if out else np.zeros(0, np.int64)).astype(np.int64)
+
+
+@settings(max_examples=80, deadline=None)
+@given(weighted_graphs(max_n=25))
+def test_level_min_matches_reference_on_any_clique(graph):
+    # reference: level_min_reference, which checks every outside vertex in plain
+    # Python; on sweep candidates, on maximal cliques of G_0 (networkx.find_cliques
+    # is the reference for those, see above) and on random sub-cliques of them
+    n, u, v, lev, rng = graph
+    csr = csr_from_edges(n, u, v, lev)
+    indptr, nbr, nlev, eid = csr
+    ptr, nodes, _, _, _ = sweep_candidates(*csr, u, v, lev)
+    sets = [(ptr, nodes), maximal_cliques(indptr, nbr)]
+    sets.append(sub_cliques(*sets[1], rng))
+    for p, x in sets:
+        np.testing.assert_array_equal(level_min(indptr, nbr, nlev, p, x),
+                                      level_min_reference(u, v, lev, p, x))
+
+
+def test_level_min_with_a_hub_member_and_read_only_arrays():
+    # reference: level_min_reference. A hub (node 0, 3000 neighbours) sits in every
+    # clique, so rows are long and survivors few (the binary-search path), and the
+    # arrays are read-only, as the memory-mapped graph files of a run are.
+    rng = np.random.default_rng(11)
+    n = 3001
+    edges = {(0, x) for x in range(1, n)}
+    for x, y in rng.integers(1, n, (6000, 2)):
+        if x != y:
+            edges.add((min(x, y), max(x, y)))
+    for base in range(1, 400, 8):  # planted 5-cliques with the hub: 6-cliques
+        grp = [0] + list(range(base, base + 5))
+        edges |= {(a, b) for i, a in enumerate(grp) for b in grp[i + 1:]}
+    edges = sorted(edges)
+    u = np.array([a for a, _ in edges], np.int64)
+    v = np.array([b for _, b in edges], np.int64)
+    lev = rng.integers(0, 4, len(edges)).astype(np.int32)
+    csr = csr_from_edges(n, u, v, lev)
+    for a in csr:
+        a.flags.writeable = False
+    ptr, nodes = maximal_cliques(csr[0], csr[1])
+    p, x = sub_cliques(ptr, nodes, rng, per=1)
+    for pp, xx in ((ptr, nodes), (p, x)):
+        got = level_min(csr[0], csr[1], csr[2], pp, xx)
+        ref = level_min_reference(u, v, lev, pp, xx)
+        np.testing.assert_array_equal(got, ref)
+    assert np.any(got > 0) and np.any(got == 0)

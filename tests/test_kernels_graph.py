@@ -9,11 +9,13 @@ from hypothesis import strategies as st
 from cliquewise.kernels.graph import (
     csr_from_edges,
     csr_from_edges_reference,
+    degeneracy_kernel,
     find_edge,
     find_edge_reference,
     intersect_merge,
     intersect_reference,
     intersect_sorted,
+    prefetch_member_rows,
 )
 
 
@@ -144,3 +146,41 @@ def test_intersections_match_numpy(a, b, pad_a, pad_b, dtype):
     assert m2 == len(ia)
     np.testing.assert_array_equal(outA[:m2] - alo, ia)
     np.testing.assert_array_equal(outB[:m2] - blo, ib)
+
+
+@settings(max_examples=40, deadline=None)
+@given(edge_lists(max_n=30))
+def test_degeneracy_kernel_matches_networkx_core_number(graph):
+    # reference: networkx.core_number; and the smallest-last property checked
+    # directly (a vertex has at most core[x] neighbours after it in the order)
+    n, u, v, lev = graph
+    indptr, nbr, _, _ = csr_from_edges(n, u, v, lev)
+    order, core = degeneracy_kernel(indptr, nbr)
+    g = nx.Graph()
+    g.add_nodes_from(range(n))
+    g.add_edges_from(zip(u.tolist(), v.tolist()))
+    cn = nx.core_number(g)
+    np.testing.assert_array_equal(core, [cn[x] for x in range(n)])
+    rank = np.empty(n, np.int64)
+    rank[order] = np.arange(n)
+    for x in range(n):
+        assert sum(rank[y] > rank[x] for y in nbr[indptr[x]:indptr[x + 1]]) <= core[x]
+
+
+def test_prefetch_member_rows_changes_nothing():
+    # reference: numpy copies of the inputs, compared after the call. The hint runs
+    # on every set of a list (past the end of the list and of the arrays too, for
+    # an empty last row) and on read-only arrays, as memory-mapped files give.
+    n, u, v, lev = 6, np.array([0, 0, 1, 2]), np.array([1, 2, 2, 4]), np.zeros(4, np.int32)
+    arrays = list(csr_from_edges(n, u, v, lev))
+    ptr = np.array([0, 2, 3, 5, 6], np.int64)
+    nodes = np.array([0, 1, 2, 4, 5, 3], np.int64)  # nodes 3 and 5 have empty rows
+    before = [a.copy() for a in arrays + [ptr, nodes]]
+    for a in arrays + [ptr, nodes]:
+        a.flags.writeable = False
+    indptr, nbr, nlev, eid = arrays
+    for k in range(len(ptr) - 1):
+        prefetch_member_rows(indptr, nbr, nlev, ptr, nodes, k)
+        prefetch_member_rows(indptr, nbr, eid, ptr, nodes, k)
+    for a, b in zip(arrays + [ptr, nodes], before):
+        np.testing.assert_array_equal(a, b)

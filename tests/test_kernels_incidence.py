@@ -105,3 +105,34 @@ def test_no_candidates_and_non_cliques():
     assert inc_cand.size == 0
     with pytest.raises(ValueError, match="not a clique"):
         incidence(indptr, nbr, eid, np.array([0, 3]), np.array([0, 1, 2]), 2)
+
+
+@pytest.mark.parametrize("wide", [False, True])
+def test_incidence_with_a_hub_member_and_read_only_arrays(wide):
+    # reference: the plain-Python twin. A hub (node 0, 3000 neighbours) sits in
+    # every maximal clique, so its row is searched by bisection rather than walked;
+    # the arrays are read-only, as the memory-mapped files of a run are, and
+    # ``wide`` takes the int64 pair buffer used from 2**31 edges on.
+    rng = np.random.default_rng(12)
+    n = 3001
+    edges = {(0, x) for x in range(1, n)}
+    for x, y in rng.integers(1, n, (6000, 2)):
+        if x != y:
+            edges.add((min(x, y), max(x, y)))
+    for base in range(1, 400, 8):
+        grp = [0] + list(range(base, base + 5))
+        edges |= {(a, b) for i, a in enumerate(grp) for b in grp[i + 1:]}
+    edges = sorted(edges)
+    perm = rng.permutation(len(edges))  # edge ids in a random order
+    u = np.array([a for a, _ in edges], np.int64)[perm]
+    v = np.array([b for _, b in edges], np.int64)[perm]
+    lev = np.zeros(len(u), np.int32)
+    csr = csr_from_edges(n, u, v, lev)
+    for a in csr:
+        a.flags.writeable = False
+    ptr, nodes = maximal_cliques(csr[0], csr[1])
+    assert np.all(nodes[ptr[:-1]] == 0)
+    inc_ptr, inc_cand = incidence(csr[0], csr[1], csr[3], ptr, nodes, len(u), _wide=wide)
+    ref_ptr, ref_cand = incidence_reference(u, v, ptr, nodes)
+    np.testing.assert_array_equal(inc_ptr, ref_ptr)
+    np.testing.assert_array_equal(inc_cand, ref_cand)

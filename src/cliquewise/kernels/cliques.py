@@ -26,60 +26,46 @@ What lives here
     smallest edge level (a clique maximal in ``G_t`` stays maximal in the smaller
     graph ``G_{level_max}``, as ``t <= level_max``).
 ``level_min`` / ``level_max_of``
-    The lowest level at which a listed clique is still maximal, and its smallest
-    internal edge level (a check on ``level_max``).
+    The lowest level at which a listed clique is still maximal (by sorted-row
+    intersection from its member of smallest degree), and its smallest internal
+    edge level (a check on ``level_max``).
 ``*_reference``
     Slow twins on networkx, used by the tests.
 
-The local search
-----------------
-A sub-problem (one vertex for ``maximal_cliques``, one edge for the sweep) is a
-universe of vertices: the candidates ``P`` (local ids ``0..p-1``, ascending node
-id) and the excluded ``X`` (local ids after them). Adjacency is held as bitsets.
-
-* Universes of at most 64 vertices (almost all of them on sparse graphs) use one
-  machine word per set.
-* Larger ones use multi-word sets over ``P`` for every vertex and over ``X`` for
-  ``P`` vertices only (``X``-``X`` pairs are never needed); ``X`` vertices with no
-  ``P`` neighbour are dropped, as they cannot block a clique holding a ``P`` vertex.
-  Memory is ``O(|P| (|P| + |X|) / 64)`` words.
-* In the sweep, common neighbourhoods above 1024 vertices are first split by a
-  degeneracy order of ``G_l[S]``, as ``maximal_cliques`` splits a whole graph, so
-  ``|P|`` stays below the degeneracy of ``G_l[S]``.
-
-The search is iterative (explicit stack). Uniqueness in the sweep uses "move to
-X": a common neighbour ``x`` with ``(a, x)`` or ``(b, x)`` of level ``l`` and a
-smaller edge index than ``e`` starts in ``X``; and when branching on ``w``, every
-``y`` with ``(w, y)`` of level ``l`` and a smaller index goes to the child's ``X``
-rather than its ``P``. Cliques holding such a pair are then never produced from
-``e``, while ``X`` still blocks non-maximal ones; no post-filter is needed.
-
-Work count (the blow-up guard)
-------------------------------
-``work`` counts 64-bit word operations of the set algebra (pivot scoring, child
-sets), neighbour-list entries visited when building sub-problems, and node ids
-written. It follows run time within a small factor: about 5e7 units take a
-second on one core (measured on sparse planted-clique graphs and on the dense
-cocktail-party graph alike).
-
-Implementation note
--------------------
-The per-edge code (``_solve_small``, ``_bk_run``, ``_put`` and the row
-intersections of :mod:`cliquewise.kernels.graph`) never allocates, so it can be compiled without numba's reference counting, whose atomic
-updates on every array argument would otherwise cost more than the work. When
-the output buffers are full it reports status 3; the driver then rolls the unit
-(edge or vertex) back, doubles the buffers and redoes it.
+The drivers here only cut the work into sub-problems (one vertex for
+``maximal_cliques``, one edge for the sweep) and collect the output; the
+bitset search that solves a sub-problem, the "move to X" rule that keeps the
+sweep free of duplicates, the split of large common neighbourhoods and the
+work count (the blow-up guard) are in :mod:`cliquewise.kernels.localbk`.
+When the output buffers are full a driver rolls its unit (vertex or edge) back,
+doubles the buffers and redoes the unit.
 """
 
 import networkx as nx
 import numba
 import numpy as np
-from llvmlite import ir
-from numba.core import cgutils, types
-from numba.extending import intrinsic
 
-from cliquewise.kernels.graph import bit_length, find_edge, intersect_merge
+from cliquewise.kernels.graph import (
+    bit_length,
+    degeneracy_kernel,
+    find_edge,
+    prefetch_member_rows,
+)
 from cliquewise.kernels.graph import intersect_sorted as _isect
+from cliquewise.kernels.localbk import (
+    FULL,
+    NO_LIMIT,
+    OK,
+    SM_SIZE,
+    SMALL,
+    SPLIT,
+    TOO_MUCH_WORK,
+    grown,
+    put_clique,
+    solve_general,
+    solve_small,
+    solve_split,
+)
 
 __all__ = [
     "degeneracy_order",
@@ -89,153 +75,21 @@ __all__ = [
     "sweep_candidates",
     "candidates_reference",
     "level_min",
+    "level_min_reference",
     "level_max_of",
     "NO_LIMIT",
 ]
 
-NO_LIMIT = np.int64(2**62)
-
-_ONE = np.uint64(1)
-_ZERO = np.uint64(0)
-_ALL = np.uint64(0xFFFFFFFFFFFFFFFF)
-
-# Scalars passed to other kernels are typed int64 on purpose (np.int64 constants,
-# counters started at np.int64(0)): a bare literal makes numba compile an extra
-# specialisation of the callee for that literal value.
+# Scalars passed to other kernels are typed int64 on purpose: a bare literal makes
+# numba compile an extra specialisation of the callee for that literal value.
 _I0 = np.int64(0)
 _I1 = np.int64(1)
 _I2 = np.int64(2)
-_I3 = np.int64(3)
-
-_SMALL = 64  # universes up to this size use one-word bitsets
-_SPLIT = 1024  # common neighbourhoods above this size are split by degeneracy
-
-# status codes kept in cnt[3]; cnt = [n_cliques, n_nodes, work, status]
-_OK = 0
-_TOO_MANY = 1
-_TOO_MUCH_WORK = 2
-_FULL = 3  # internal: output buffers full, the driver grows them and redoes the unit
-
-
-# Per-edge kernels never allocate, and are compiled without numba's reference
-# counting (``_nrt=False``): otherwise every call pays atomic reference-count
-# updates on its array arguments, which costs more than the work itself here.
-_leaf = numba.njit(nogil=True, cache=True, _nrt=False)
-
-
-# --------------------------------------------------------------------------
-# bit helpers (LLVM intrinsics: one instruction on current CPUs)
-# --------------------------------------------------------------------------
-@intrinsic
-def _popc(typingctx, x):
-    sig = types.uint64(types.uint64)
-
-    def codegen(context, builder, signature, args):
-        fnty = ir.FunctionType(ir.IntType(64), [ir.IntType(64)])
-        fn = cgutils.get_or_insert_function(builder.module, fnty, "llvm.ctpop.i64")
-        return builder.call(fn, args)
-
-    return sig, codegen
-
-
-@intrinsic
-def _ctz(typingctx, x):
-    sig = types.uint64(types.uint64)
-
-    def codegen(context, builder, signature, args):
-        fnty = ir.FunctionType(ir.IntType(64), [ir.IntType(64), ir.IntType(1)])
-        fn = cgutils.get_or_insert_function(builder.module, fnty, "llvm.cttz.i64")
-        return builder.call(fn, [args[0], ir.Constant(ir.IntType(1), 0)])
-
-    return sig, codegen
-
-
-@_leaf
-def _bit(j):
-    return _ONE << np.uint64(j & 63)
-
-
-# --------------------------------------------------------------------------
-# output buffers
-# --------------------------------------------------------------------------
-@_leaf
-def _put(ptr, nodes, cnt, buf, k, max_cliques):
-    """Append ``buf[:k]`` as one clique, or set status 1 (budget) or 3 (full)."""
-    K = cnt[0]
-    if K >= max_cliques:
-        cnt[3] = _TOO_MANY
-        return
-    NN = cnt[1]
-    if K + 2 > ptr.shape[0] or NN + k > nodes.shape[0]:
-        cnt[3] = _FULL
-        return
-    for i in range(k):
-        nodes[NN + i] = buf[i]
-    ptr[K + 1] = NN + k
-    cnt[0] = K + 1
-    cnt[1] = NN + k
-    cnt[2] += k
-
-
-@numba.njit(nogil=True, cache=True)
-def _grown(arr, keep):
-    """A copy of ``arr`` with twice the room, holding its first ``keep`` items."""
-    out = np.empty(2 * arr.shape[0] + 64, arr.dtype)
-    out[:keep] = arr[:keep]
-    return out
 
 
 # --------------------------------------------------------------------------
 # degeneracy order
 # --------------------------------------------------------------------------
-@numba.njit(nogil=True, cache=True)
-def _degeneracy_kernel(indptr, nbr):
-    n = indptr.shape[0] - 1
-    deg = np.empty(n, np.int64)
-    md = 0
-    for x in range(n):
-        deg[x] = indptr[x + 1] - indptr[x]
-        md = max(md, deg[x])
-    bins = np.zeros(md + 1, np.int64)
-    for x in range(n):
-        bins[deg[x]] += 1
-    start = 0
-    for d in range(md + 1):
-        c = bins[d]
-        bins[d] = start
-        start += c
-    pos = np.empty(n, np.int64)
-    vert = np.empty(n, np.int64)
-    for x in range(n):
-        pos[x] = bins[deg[x]]
-        vert[pos[x]] = x
-        bins[deg[x]] += 1
-    for d in range(md, 0, -1):
-        bins[d] = bins[d - 1]
-    bins[0] = 0
-    # vert is sorted by current degree and bins[d] is the first slot of degree d;
-    # taking vertices in slot order and moving each higher-degree neighbour one
-    # bin down keeps that true (Batagelj and Zaversnik's layout).
-    for i in range(n):
-        x = vert[i]
-        dx = deg[x]
-        for k in range(indptr[x], indptr[x + 1]):
-            w = nbr[k]
-            dw = deg[w]
-            if dw > dx:
-                pw = pos[w]
-                ps = bins[dw]
-                y = vert[ps]
-                if y != w:
-                    pos[w] = ps
-                    vert[pw] = y
-                    pos[y] = pw
-                    vert[ps] = w
-                bins[dw] += 1
-                deg[w] = dw - 1
-    return vert, deg
-
-
 def degeneracy_order(indptr, nbr):
     """Degeneracy order and core numbers (linear-time bucket queue).
 
@@ -253,7 +107,7 @@ def degeneracy_order(indptr, nbr):
     core : ndarray of int64, shape (n,)
         Core number of each vertex.
     """
-    return _degeneracy_kernel(np.asarray(indptr, np.int64), nbr)
+    return degeneracy_kernel(np.asarray(indptr, np.int64), nbr)
 
 
 def degeneracy_order_reference(n, u, v):
@@ -266,409 +120,23 @@ def degeneracy_order_reference(n, u, v):
 
 
 # --------------------------------------------------------------------------
-# one sub-problem
-#
-# The universe is the sorted array ``U[ulo:uhi]`` of CSR row ids; ``lidx`` gives
-# each slot its local id (``0..p-1`` for P, ascending; ``p..`` for X). ``Prow[i]``
-# is the CSR row of candidate ``i`` and ``Pglob[i]`` its node id in the output
-# (they differ only inside the large-neighbourhood split). With ``levelled != 0``
-# only entries of level ``>= l`` count, and P-P pairs of level ``l`` with edge id
-# ``< ecut`` are "early" (never both in one listed clique). Cliques are written as
-# ``pre[:npre] + Pglob[R]``, sorted.
-# --------------------------------------------------------------------------
-@_leaf
-def _emit(ptr, nodes, cnt, pre, npre, Pglob, rbits, rlo, nwords, cbuf, max_cliques):
-    """Append ``pre + Pglob[R]``, R being the bitset ``rbits[rlo:rlo + nwords]``."""
-    k = np.int64(0)
-    h = 0
-    for wi in range(nwords):
-        bits = rbits[rlo + wi]
-        while bits != _ZERO:
-            t = np.int64(_ctz(bits))
-            bits &= bits - _ONE
-            g = Pglob[wi * 64 + t]
-            while h < npre and pre[h] < g:
-                cbuf[k] = pre[h]
-                k += 1
-                h += 1
-            cbuf[k] = g
-            k += 1
-    while h < npre:
-        cbuf[k] = pre[h]
-        k += 1
-        h += 1
-    _put(ptr, nodes, cnt, cbuf, k, max_cliques)
-
-
-# one-word scratch ``sm``: adjacency rows, early rows, stacks of P, X, branch sets
-_SM_EARLY = 64
-_SM_P = 128
-_SM_X = _SM_P + 66
-_SM_T = _SM_X + 66
-_SM_R = _SM_T + 66
-_SM_SIZE = _SM_R + 67
-
-
-@_leaf
-def _solve_small(indptr, nbr, nlev, eid, levelled, l, ecut, U, ulo, uhi, lidx,
-                 Prow, Pglob, p, pre, npre, sm, inv, cbuf, posA, posB,
-                 ptr, nodes, cnt, max_cliques, max_work):
-    """Sub-problem with at most 64 universe vertices and ``p >= 1``: one word per set.
-
-    Row ``i`` of P links ``i`` to every later local id ``j > i`` it is adjacent
-    to, by binary searches of those few ids in the CSR row, or by one merge of
-    the row with the universe when the row is short.
-    """
-    s = uhi - ulo
-    work = np.int64(0)
-    for i in range(s):
-        sm[i] = _ZERO
-        inv[lidx[i]] = i
-    for i in range(p):
-        sm[_SM_EARLY + i] = _ZERO
-    for i in range(p):
-        x = Prow[i]
-        lo = np.int64(indptr[x])
-        hi = np.int64(indptr[x + 1])
-        bi = _ONE << np.uint64(i)
-        nj = s - 1 - i
-        g = nj * bit_length(hi - lo)
-        use_search = g < hi - lo + s
-        if use_search:
-            m = nj
-            work += g
-        else:
-            m = intersect_merge(nbr, lo, hi, U, ulo, uhi, posA, posB)
-            work += hi - lo + s
-        for t in range(m):
-            if use_search:
-                j = i + 1 + t
-                y = U[ulo + inv[j]]
-                ia = lo
-                ib = hi
-                while ia < ib:
-                    mid = (ia + ib) >> 1
-                    if nbr[mid] < y:
-                        ia = mid + 1
-                    else:
-                        ib = mid
-                if ia == hi or nbr[ia] != y:
-                    continue
-                pa = ia
-            else:
-                j = lidx[posB[t] - ulo]
-                if j <= i:
-                    continue
-                pa = posA[t]
-            if levelled != 0 and nlev[pa] < l:
-                continue
-            bj = _ONE << np.uint64(j)
-            sm[i] |= bj
-            sm[j] |= bi
-            if j < p and levelled != 0 and nlev[pa] == l and eid[pa] < ecut:
-                sm[_SM_EARLY + i] |= bj
-                sm[_SM_EARLY + j] |= bi
-    pall = _ALL if p == 64 else (_ONE << np.uint64(p)) - _ONE
-    uall = _ALL if s == 64 else (_ONE << np.uint64(s)) - _ONE
-    sm[_SM_P] = pall
-    sm[_SM_X] = uall & ~pall
-    sm[_SM_R] = _ZERO
-    d = 0
-    fresh = True  # frame d still needs its pivot
-    while d >= 0:
-        if fresh:
-            fresh = False
-            P = sm[_SM_P + d]
-            X = sm[_SM_X + d]
-            npc = _popc(P)
-            bits = P | X
-            work += np.int64(_popc(bits)) + 1
-            best = _ZERO
-            brow = _ZERO
-            prune = False
-            first = True
-            while bits != _ZERO:
-                t = _ctz(bits)
-                bits &= bits - _ONE
-                row = sm[np.int64(t)]
-                c = _popc(P & row)
-                if c == npc and ((X >> t) & _ONE) != _ZERO:
-                    prune = True  # an X vertex sees all of P: nothing maximal here
-                    break
-                if first or c > best:
-                    best = c
-                    brow = row
-                    first = False
-            if prune:
-                d -= 1
-                continue
-            sm[_SM_T + d] = P & ~brow
-        T = sm[_SM_T + d]
-        if T == _ZERO:
-            d -= 1
-            continue
-        t = _ctz(T)
-        sm[_SM_T + d] = T & (T - _ONE)
-        b = _ONE << t
-        w = np.int64(t)
-        P = sm[_SM_P + d]
-        X = sm[_SM_X + d]
-        row = sm[w]
-        nP = P & row
-        nX = X & row
-        if levelled != 0:
-            e = sm[_SM_EARLY + w]
-            nX |= nP & e
-            nP &= ~e
-        sm[_SM_P + d] = P & ~b
-        sm[_SM_X + d] = X | b
-        nR = sm[_SM_R + d] | b
-        work += 2
-        if nP == _ZERO:
-            if nX == _ZERO:
-                sm[_SM_R + 66] = nR
-                _emit(ptr, nodes, cnt, pre, npre, Pglob, sm, np.int64(_SM_R + 66), _I1,
-                      cbuf, max_cliques)
-                if cnt[3] != _OK:
-                    break
-        else:
-            d += 1
-            sm[_SM_P + d] = nP
-            sm[_SM_X + d] = nX
-            sm[_SM_R + d] = nR
-            fresh = True
-        if cnt[2] + work > max_work:
-            cnt[3] = _TOO_MUCH_WORK
-            break
-    cnt[2] += work
-
-
-@_leaf
-def _choose_pivot(d, Wp, Wx, adjPP, adjXP, stP, stXP, stXX, stT, stC):
-    """Tomita pivot for frame ``d``: ``u`` in ``P + X`` maximising ``|P & N(u)|``.
-
-    Writes the branch set ``P - N(u)`` to ``stT``. Returns ``(has_branches, work)``;
-    no branches when an ``X`` vertex is adjacent to all of ``P``.
-    """
-    base = d * Wp
-    npc = 0
-    for k in range(Wp):
-        npc += np.int64(_popc(stP[base + k]))
-    best = -1
-    best_row = 0
-    best_in_xx = False  # the pivot's row lives in adjXP (else in adjPP)
-    nvis = 0
-    # P and the X vertices that came from P share the P index space
-    for wi in range(Wp):
-        inP = stP[base + wi]
-        bits = inP | stXP[base + wi]
-        while bits != _ZERO:
-            t = np.int64(_ctz(bits))
-            bits &= bits - _ONE
-            row = (wi * 64 + t) * Wp
-            c = 0
-            for k in range(Wp):
-                c += np.int64(_popc(stP[base + k] & adjPP[row + k]))
-            nvis += 1
-            if c == npc and ((inP >> np.uint64(t)) & _ONE) == _ZERO:
-                return False, nvis * Wp
-            if c > best:
-                best = c
-                best_row = row
-    xb = d * Wx
-    for wi in range(Wx):
-        bits = stXX[xb + wi]
-        while bits != _ZERO:
-            t = np.int64(_ctz(bits))
-            bits &= bits - _ONE
-            row = (wi * 64 + t) * Wp
-            c = 0
-            for k in range(Wp):
-                c += np.int64(_popc(stP[base + k] & adjXP[row + k]))
-            nvis += 1
-            if c == npc:
-                return False, nvis * Wp
-            if c > best:
-                best = c
-                best_row = row
-                best_in_xx = True
-    if best_in_xx:
-        for k in range(Wp):
-            stT[base + k] = stP[base + k] & ~adjXP[best_row + k]
-    else:
-        for k in range(Wp):
-            stT[base + k] = stP[base + k] & ~adjPP[best_row + k]
-    stC[d] = 0
-    return True, nvis * Wp + Wp
-
-
-@_leaf
-def _bk_run(p, q, Wp, Wx, adjPP, adjPX, adjXP, earlyP, levelled, Pglob, pre, npre,
-            stP, stXP, stXX, stT, stC, stR, cbuf, ptr, nodes, cnt,
-            max_cliques, max_work):
-    """Iterative Bron-Kerbosch with pivoting on a multi-word sub-problem.
-
-    Sets over P take ``Wp`` words, sets over the compacted X take ``Wx``; frame
-    ``d`` of a stack starts at ``d * Wp`` (or ``d * Wx``). ``stR`` holds the
-    current clique as a P bitset per frame.
-    """
-    for k in range(Wp):
-        stP[k] = _ALL
-        stXP[k] = _ZERO
-        stR[k] = _ZERO
-    if p & 63:
-        stP[Wp - 1] = (_ONE << np.uint64(p & 63)) - _ONE
-    for k in range(Wx):
-        stXX[k] = _ALL
-    if q & 63:
-        stXX[Wx - 1] = (_ONE << np.uint64(q & 63)) - _ONE
-    ok, wk = _choose_pivot(_I0, Wp, Wx, adjPP, adjXP, stP, stXP, stXX, stT, stC)
-    cnt[2] += wk
-    if not ok:
-        return
-    d = np.int64(0)
-    while d >= 0:
-        base = d * Wp
-        c = stC[d]
-        while c < Wp and stT[base + c] == _ZERO:
-            c += 1
-        if c == Wp:
-            d -= 1
-            continue
-        stC[d] = c
-        word = stT[base + c]
-        t = _ctz(word)
-        stT[base + c] = word & (word - _ONE)
-        w = c * 64 + np.int64(t)
-        b = _ONE << t
-        # child sets (frame d + 1)
-        nb = base + Wp
-        rw = w * Wp
-        anyP = _ZERO
-        anyX = _ZERO
-        for k in range(Wp):
-            pk = stP[base + k] & adjPP[rw + k]
-            xk = stXP[base + k] & adjPP[rw + k]
-            if levelled != 0:
-                ek = earlyP[rw + k]
-                xk |= pk & ek
-                pk &= ~ek
-            stP[nb + k] = pk
-            stXP[nb + k] = xk
-            stR[nb + k] = stR[base + k]
-            anyP |= pk
-            anyX |= xk
-        stR[nb + c] |= b
-        xb = d * Wx
-        rx = w * Wx
-        for k in range(Wx):
-            xk = stXX[xb + k] & adjPX[rx + k]
-            stXX[xb + Wx + k] = xk
-            anyX |= xk
-        # w leaves P for X in the current frame
-        stP[base + c] &= ~b
-        stXP[base + c] |= b
-        cnt[2] += 3 * Wp + Wx
-        if anyP == _ZERO:
-            if anyX == _ZERO:
-                _emit(ptr, nodes, cnt, pre, npre, Pglob, stR, nb, Wp, cbuf, max_cliques)
-                if cnt[3] != _OK:
-                    return
-        else:
-            d += 1
-            ok, wk = _choose_pivot(d, Wp, Wx, adjPP, adjXP, stP, stXP, stXX, stT, stC)
-            cnt[2] += wk
-            if not ok:
-                d -= 1
-        if cnt[2] > max_work:
-            cnt[3] = _TOO_MUCH_WORK
-            return
-
-
-@numba.njit(nogil=True, cache=True)
-def _solve_general(indptr, nbr, nlev, eid, levelled, l, ecut, U, ulo, uhi, lidx,
-                   Prow, Pglob, p, q, pre, npre, ptr, nodes, cnt, max_cliques,
-                   max_work):
-    """Sub-problem of any size (``p >= 1``): multi-word bitsets, X compacted."""
-    s = uhi - ulo
-    Wp = (p + 63) >> 6
-    adjPP = np.zeros(p * Wp, np.uint64)
-    earlyP = np.zeros(p * Wp if levelled != 0 else 0, np.uint64)
-    posA = np.empty(s, np.int64)
-    posB = np.empty(s, np.int64)
-    xnew = np.zeros(q, np.int64)
-    pair_i = np.empty(64, np.int64)
-    pair_j = np.empty(64, np.int64)
-    # scan the rows of P against the universe: P-P bits now, P-X pairs listed
-    npairs = np.int64(0)
-    for i in range(p):
-        x = Prow[i]
-        m, wk = _isect(nbr, np.int64(indptr[x]), np.int64(indptr[x + 1]), U, ulo, uhi,
-                       posA, posB)
-        cnt[2] += wk
-        row = i * Wp
-        for t in range(m):
-            pa = posA[t]
-            if levelled != 0 and nlev[pa] < l:
-                continue
-            j = lidx[posB[t] - ulo]
-            if j < p:
-                adjPP[row + (j >> 6)] |= _bit(j)
-                if levelled != 0 and nlev[pa] == l and eid[pa] < ecut:
-                    earlyP[row + (j >> 6)] |= _bit(j)
-            else:
-                if npairs == pair_i.shape[0]:
-                    pair_i = _grown(pair_i, npairs)
-                    pair_j = _grown(pair_j, npairs)
-                pair_i[npairs] = i
-                pair_j[npairs] = j - p
-                xnew[j - p] = 1
-                npairs += 1
-    # keep only X vertices with a P neighbour; xnew becomes their compacted index
-    q2 = np.int64(0)
-    for j in range(q):
-        if xnew[j] != 0:
-            xnew[j] = q2
-            q2 += 1
-    Wx = (q2 + 63) >> 6
-    adjPX = np.zeros(p * Wx, np.uint64)
-    adjXP = np.zeros(q2 * Wp, np.uint64)
-    for h in range(npairs):
-        i = pair_i[h]
-        j = xnew[pair_j[h]]
-        adjPX[i * Wx + (j >> 6)] |= _bit(j)
-        adjXP[j * Wp + (i >> 6)] |= _bit(i)
-    cap = p + 1  # a clique inside P has at most p vertices: frames 0..p
-    stP = np.empty(cap * Wp, np.uint64)
-    stXP = np.empty(cap * Wp, np.uint64)
-    stT = np.empty(cap * Wp, np.uint64)
-    stR = np.empty(cap * Wp, np.uint64)
-    stXX = np.empty(cap * Wx, np.uint64)
-    stC = np.empty(cap, np.int64)
-    cbuf = np.empty(p + npre, np.int64)
-    _bk_run(p, q2, Wp, Wx, adjPP, adjPX, adjXP, earlyP, levelled, Pglob, pre, npre,
-            stP, stXP, stXX, stT, stC, stR, cbuf, ptr, nodes, cnt, max_cliques,
-            max_work)
-
-
-# --------------------------------------------------------------------------
 # all maximal cliques of one graph
 # --------------------------------------------------------------------------
 @numba.njit(nogil=True, cache=True)
 def _maximal_cliques_kernel(indptr, nbr, small_max):
     n = indptr.shape[0] - 1
-    order, core = _degeneracy_kernel(indptr, nbr)
+    order, core = degeneracy_kernel(indptr, nbr)
     rank = np.empty(n, np.int64)
     for i in range(n):
         rank[order[i]] = i
     maxdeg = 0
     for x in range(n):
         maxdeg = max(maxdeg, indptr[x + 1] - indptr[x])
-    sm = np.empty(_SM_SIZE, np.uint64)
-    inv = np.empty(_SMALL, np.int64)
-    cbuf = np.empty(_SMALL + 1, np.int64)
-    posA = np.empty(_SMALL, np.int64)
-    posB = np.empty(_SMALL, np.int64)
+    sm = np.empty(SM_SIZE, np.uint64)
+    inv = np.empty(SMALL, np.int64)
+    cbuf = np.empty(SMALL + 1, np.int64)
+    posA = np.empty(SMALL, np.int64)
+    posB = np.empty(SMALL, np.int64)
     lidx = np.empty(maxdeg, np.int64)
     Pglob = np.empty(maxdeg, np.int64)
     ptr = np.zeros(1024, np.int64)
@@ -703,28 +171,28 @@ def _maximal_cliques_kernel(indptr, nbr, small_max):
         N0 = cnt[1]
         W0 = cnt[2]
         if s <= small_max:
-            _solve_small(indptr, nbr, no_lev, no_eid, _I0, _I0, _I0, nbr, lo, hi, lidx,
+            solve_small(indptr, nbr, no_lev, no_eid, _I0, _I0, _I0, nbr, lo, hi, lidx,
                          Pglob, Pglob, p, pre, _I1, sm, inv, cbuf, posA, posB, ptr,
                          nodes,
                          cnt, NO_LIMIT, NO_LIMIT)
         else:
-            _solve_general(indptr, nbr, no_lev, no_eid, _I0, _I0, _I0, nbr, lo, hi,
+            solve_general(indptr, nbr, no_lev, no_eid, _I0, _I0, _I0, nbr, lo, hi,
                            lidx, Pglob, Pglob, p, s - p, pre, _I1, ptr, nodes, cnt,
                            NO_LIMIT, NO_LIMIT)
-        if cnt[3] == _FULL:
+        if cnt[3] == FULL:
             cnt[0] = K0
             cnt[1] = N0
             cnt[2] = W0
-            cnt[3] = _OK
-            ptr = _grown(ptr, K0 + 1)
-            nodes = _grown(nodes, N0)
+            cnt[3] = OK
+            ptr = grown(ptr, K0 + 1)
+            nodes = grown(nodes, N0)
             continue  # redo x
         x += 1
     K = cnt[0]
     return ptr[: K + 1].copy(), nodes[: cnt[1]].copy()
 
 
-def maximal_cliques(indptr, nbr, *, _small=_SMALL):
+def maximal_cliques(indptr, nbr, *, _small=SMALL):
     """All maximal cliques with at least two vertices (edge levels ignored).
 
     Parameters
@@ -744,7 +212,7 @@ def maximal_cliques(indptr, nbr, *, _small=_SMALL):
     ``_small`` (for tests) is the largest neighbourhood solved with one-word
     bitsets; lowering it drives the multi-word path on small graphs.
     """
-    if not 0 <= _small <= _SMALL:
+    if not 0 <= _small <= SMALL:
         raise ValueError("_small must lie in [0, 64]")
     return _maximal_cliques_kernel(np.asarray(indptr, np.int64), nbr, np.int64(_small))
 
@@ -757,126 +225,18 @@ def maximal_cliques_reference(n, u, v):
     return {frozenset(c) for c in nx.find_cliques(g) if len(c) >= 2}
 
 
+
 # --------------------------------------------------------------------------
 # the level sweep
 # --------------------------------------------------------------------------
 @numba.njit(nogil=True, cache=True)
-def _solve_split(indptr, nbr, nlev, eid, l, e, S, ex, s, a, b, sm, inv, cbuf, posA,
-                 posB, ptr, nodes, cnt, max_cliques, max_work, small_max):
-    """Edge sub-problem with a large common neighbourhood ``S[:s]``.
-
-    Builds ``H = G_l[S]`` as a local CSR (levels and edge ids kept), orders it by
-    degeneracy and solves one sub-problem per non-excluded ``w`` of ``S``: the
-    candidates are the later, non-excluded, non-early neighbours of ``w`` in ``H``,
-    the rest of its neighbours are excluded, and the prefix is ``{a, b, w}``. Each
-    wanted clique is found from its first vertex in that order.
-    """
-    hptr = np.zeros(s + 1, np.int64)
-    cap = 4 * s
-    hnbr = np.empty(cap, nbr.dtype)
-    hlev = np.empty(cap, np.int32)
-    heid = np.empty(cap, np.int64)
-    pa_buf = np.empty(s, np.int64)
-    pb_buf = np.empty(s, np.int64)
-    nh = 0
-    for i in range(s):
-        x = S[i]
-        m, wk = _isect(nbr, np.int64(indptr[x]), np.int64(indptr[x + 1]), S, _I0, s,
-                       pa_buf, pb_buf)
-        cnt[2] += wk
-        if nh + m > cap:
-            cap = max(nh + m, 2 * cap)
-            t1 = np.empty(cap, nbr.dtype)
-            t1[:nh] = hnbr[:nh]
-            hnbr = t1
-            t2 = np.empty(cap, np.int32)
-            t2[:nh] = hlev[:nh]
-            hlev = t2
-            t3 = np.empty(cap, np.int64)
-            t3[:nh] = heid[:nh]
-            heid = t3
-        for t in range(m):
-            pa = pa_buf[t]
-            if nlev[pa] < l:
-                continue
-            hnbr[nh] = pb_buf[t]
-            hlev[nh] = nlev[pa]
-            heid[nh] = eid[pa]
-            nh += 1
-        hptr[i + 1] = nh
-    order, core = _degeneracy_kernel(hptr, hnbr)
-    rank = np.empty(s, np.int64)
-    for i in range(s):
-        rank[order[i]] = i
-    maxdeg = 0
-    for i in range(s):
-        maxdeg = max(maxdeg, hptr[i + 1] - hptr[i])
-    lidx = np.empty(maxdeg, np.int64)
-    Prow = np.empty(maxdeg, np.int64)
-    Pglob = np.empty(maxdeg, np.int64)
-    pre = np.empty(3, np.int64)
-    for w in range(s):
-        if ex[w]:
-            continue
-        lo = hptr[w]
-        hi = hptr[w + 1]
-        g = S[w]
-        # prefix {a, b, g} sorted (a < b)
-        if g < a:
-            pre[0] = g
-            pre[1] = a
-            pre[2] = b
-        elif g < b:
-            pre[0] = a
-            pre[1] = g
-            pre[2] = b
-        else:
-            pre[0] = a
-            pre[1] = b
-            pre[2] = g
-        p = np.int64(0)
-        for k in range(lo, hi):
-            y = hnbr[k]
-            if rank[y] > rank[w] and not ex[y] and not (hlev[k] == l and heid[k] < e):
-                lidx[k - lo] = p
-                Prow[p] = y
-                Pglob[p] = S[y]
-                p += 1
-            else:
-                lidx[k - lo] = -1
-        if p == 0:
-            if hi == lo:  # w has no neighbour in H: {a, b, w} is maximal
-                _put(ptr, nodes, cnt, pre, _I3, max_cliques)
-        else:
-            ix = p
-            for k in range(lo, hi):
-                if lidx[k - lo] < 0:
-                    lidx[k - lo] = ix
-                    ix += 1
-            if hi - lo <= small_max:
-                _solve_small(hptr, hnbr, hlev, heid, _I1, l, e, hnbr, lo, hi, lidx,
-                             Prow, Pglob, p, pre, _I3, sm, inv, cbuf, posA, posB,
-                             ptr,
-                             nodes, cnt, max_cliques, max_work)
-            else:
-                _solve_general(hptr, hnbr, hlev, heid, _I1, l, e, hnbr, lo, hi, lidx,
-                               Prow, Pglob, p, hi - lo - p, pre, _I3, ptr, nodes, cnt,
-                               max_cliques, max_work)
-        if cnt[3] != _OK:
-            return
-        if cnt[2] > max_work:
-            cnt[3] = _TOO_MUCH_WORK
-            return
-
-
-@numba.njit(nogil=True, cache=True)
 def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
                   max_cliques, max_work, small_max, split_at):
-    sm = np.empty(_SM_SIZE, np.uint64)
-    inv = np.empty(_SMALL, np.int64)
-    cbuf = np.empty(_SMALL + 3, np.int64)
-    sposA = np.empty(_SMALL, np.int64)
-    sposB = np.empty(_SMALL, np.int64)
+    sm = np.empty(SM_SIZE, np.uint64)
+    inv = np.empty(SMALL, np.int64)
+    cbuf = np.empty(SMALL + 3, np.int64)
+    sposA = np.empty(SMALL, np.int64)
+    sposB = np.empty(SMALL, np.int64)
     ptr = np.zeros(1024, np.int64)
     nodes = np.empty(4096, np.int64)
     lvl = np.empty(1024, np.int32)
@@ -930,9 +290,9 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
         pre[0] = a
         pre[1] = b
         if s == 0:
-            _put(ptr, nodes, cnt, pre, _I2, max_cliques)
+            put_clique(ptr, nodes, cnt, pre, _I2, max_cliques)
         elif p > 0 and s > split_at:
-            _solve_split(indptr, nbr, nlev, eid, l, e, S, ex, s, a, b, sm, inv, cbuf,
+            solve_split(indptr, nbr, nlev, eid, l, e, S, ex, s, a, b, sm, inv, cbuf,
                          sposA, sposB, ptr, nodes, cnt, max_cliques, max_work,
                          small_max)
         elif p > 0:
@@ -947,32 +307,32 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
                     Pglob[ip] = S[t]
                     ip += 1
             if s <= small_max:
-                _solve_small(indptr, nbr, nlev, eid, _I1, l, e, S, _I0, s, lidx, Pglob,
+                solve_small(indptr, nbr, nlev, eid, _I1, l, e, S, _I0, s, lidx, Pglob,
                              Pglob, p, pre, _I2, sm, inv, cbuf, sposA, sposB, ptr,
                              nodes,
                              cnt, max_cliques, max_work)
             else:
-                _solve_general(indptr, nbr, nlev, eid, _I1, l, e, S, _I0, s, lidx,
+                solve_general(indptr, nbr, nlev, eid, _I1, l, e, S, _I0, s, lidx,
                                Pglob, Pglob, p, s - p, pre, _I2, ptr, nodes, cnt,
                                max_cliques, max_work)
-        if cnt[3] == _FULL:
+        if cnt[3] == FULL:
             cnt[0] = K0
             cnt[1] = N0
             cnt[2] = W0
-            cnt[3] = _OK
-            ptr = _grown(ptr, K0 + 1)
-            nodes = _grown(nodes, N0)
+            cnt[3] = OK
+            ptr = grown(ptr, K0 + 1)
+            nodes = grown(nodes, N0)
             continue  # redo edge e with room to spare
         K1 = cnt[0]
         if K1 > K0:
             while lvl.shape[0] < K1:
-                lvl = _grown(lvl, K0)
+                lvl = grown(lvl, K0)
             for k in range(K0, K1):
                 lvl[k] = l
-        if cnt[3] != _OK:
+        if cnt[3] != OK:
             break
         if cnt[2] > max_work:
-            cnt[3] = _TOO_MUCH_WORK
+            cnt[3] = TOO_MUCH_WORK
             break
         e += 1
     K = cnt[0]
@@ -981,7 +341,7 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
 
 
 def sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
-                     max_cliques=None, max_work=None, *, _small=_SMALL, _split=_SPLIT):
+                     max_cliques=None, max_work=None, *, _small=SMALL, _split=SPLIT):
     """Candidate cliques first seen at the level of each edge in a block.
 
     For every edge ``e`` in ``[edge_lo, edge_hi)`` (indices into ``u``/``v``/``lev``)
@@ -1023,7 +383,7 @@ def sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
     degeneracy order. The two private knobs let tests drive every path on small
     graphs.
     """
-    if not 0 <= _small <= _SMALL:
+    if not 0 <= _small <= SMALL:
         raise ValueError("_small must lie in [0, 64]")
     u = np.ascontiguousarray(u, np.int64)
     v = np.ascontiguousarray(v, np.int64)
@@ -1046,6 +406,7 @@ def sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
     return ptr, nodes, lvl, int(status), int(work)
 
 
+
 # --------------------------------------------------------------------------
 # level range of a candidate
 # --------------------------------------------------------------------------
@@ -1053,47 +414,91 @@ def sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
 def _level_min_kernel(indptr, nbr, nlev, ptr, nodes):
     K = ptr.shape[0] - 1
     out = np.empty(K, np.int32)
+    cap = np.int64(64)
+    # survivors x and their running min level; two halves, read one, write the other
+    xs = np.empty(2 * cap, np.int64)
+    ms = np.empty(2 * cap, np.int32)
     for k in range(K):
+        prefetch_member_rows(indptr, nbr, nlev, ptr, nodes, k)
         lo = ptr[k]
         hi = ptr[k + 1]
-        # scan the smallest neighbourhood among the members
-        c0 = nodes[lo]
+        # the member of smallest degree
+        i0 = lo
+        d0 = indptr[nodes[lo] + 1] - indptr[nodes[lo]]
         for i in range(lo + 1, hi):
-            c = nodes[i]
-            if indptr[c + 1] - indptr[c] < indptr[c0 + 1] - indptr[c0]:
-                c0 = c
-        m = -1
+            d = indptr[nodes[i] + 1] - indptr[nodes[i]]
+            if d < d0:
+                i0 = i
+                d0 = d
+        if d0 == hi - lo - 1:
+            out[k] = 0  # its neighbours are the other members: nothing extends C
+            continue
+        if d0 > cap:
+            cap = 2 * d0
+            xs = np.empty(2 * cap, np.int64)
+            ms = np.empty(2 * cap, np.int32)
+        # survivors: its row minus the members (both sorted)
+        c0 = nodes[i0]
+        na = np.int64(0)
+        h = lo
         for q in range(indptr[c0], indptr[c0 + 1]):
-            lx = nlev[q]
-            if lx <= m:
+            x = np.int64(nbr[q])
+            while h < hi and nodes[h] < x:
+                h += 1
+            if h < hi and nodes[h] == x:
                 continue
-            x = nbr[q]
-            # skip members (binary search in the sorted clique)
-            a = lo
-            b = hi
-            while a < b:
-                mid = (a + b) >> 1
-                if nodes[mid] < x:
-                    a = mid + 1
-                else:
-                    b = mid
-            if a < hi and nodes[a] == x:
+            xs[na] = x
+            ms[na] = nlev[q]
+            na += 1
+        # keep those in the row of every other member, taking the min level
+        src = np.int64(0)
+        dst = cap
+        for i in range(lo, hi):
+            if na == 0:
+                break
+            if i == i0:
                 continue
-            mn = lx
-            for i in range(lo, hi):
-                c = nodes[i]
-                if c == c0:
-                    continue
-                pos = find_edge(indptr, nbr, c, x)
-                if pos < 0:
-                    mn = -1
-                    break
-                if nlev[pos] < mn:
-                    mn = nlev[pos]
-                    if mn <= m:
-                        break
-            if mn > m:
-                m = mn
+            q = np.int64(indptr[nodes[i]])
+            qe = np.int64(indptr[nodes[i] + 1])
+            nn = np.int64(0)
+            if na * bit_length(qe - q) < na + qe - q:
+                # few survivors, long row: binary search from the last hit
+                for t in range(na):
+                    x = xs[src + t]
+                    a = q
+                    b = qe
+                    while a < b:
+                        mid = (a + b) >> 1
+                        if nbr[mid] < x:
+                            a = mid + 1
+                        else:
+                            b = mid
+                    if a < qe and nbr[a] == x:
+                        xs[dst + nn] = x
+                        ms[dst + nn] = min(ms[src + t], nlev[a])
+                        nn += 1
+                        a += 1
+                    q = a
+            else:
+                t = np.int64(0)
+                while t < na and q < qe:
+                    x = xs[src + t]
+                    y = nbr[q]
+                    if x == y:
+                        xs[dst + nn] = x
+                        ms[dst + nn] = min(ms[src + t], nlev[q])
+                        nn += 1
+                        t += 1
+                        q += 1
+                    elif x < y:
+                        t += 1
+                    else:
+                        q += 1
+            na = nn
+            src, dst = dst, src
+        m = np.int32(-1)
+        for t in range(na):
+            m = max(m, ms[src + t])
         out[k] = m + 1
     return out
 
@@ -1106,9 +511,26 @@ def level_min(indptr, nbr, nlev, ptr, nodes):
     ``x``, ``C`` is maximal exactly on levels ``m + 1 .. level_max``; the result is
     ``m + 1``, or 0 when no ``x`` exists.
 
+    Parameters
+    ----------
+    indptr, nbr, nlev : ndarray
+        CSR from :func:`cliquewise.kernels.graph.csr_from_edges`.
+    ptr, nodes : ndarray of int64
+        Cliques of the graph, members ascending (as listed by the sweep).
+
     Returns
     -------
     ndarray of int32, shape (K,)
+
+    Notes
+    -----
+    Per clique: the surviving ``x`` start as the row of the member of smallest
+    degree less the members; the row of each other member in turn keeps those it
+    holds (a merge, or binary searches when few are left in a long row) and
+    lowers their running minimum level; the clique is done when none is left.
+    A member whose only neighbours are the other members ends it at once. The
+    rows of the cliques a few places ahead are prefetched, as these rows lie at
+    random places in memory.
     """
     return _level_min_kernel(np.asarray(indptr, np.int64), nbr,
                              np.ascontiguousarray(nlev, np.int32),
@@ -1140,6 +562,30 @@ def level_max_of(indptr, nbr, nlev, ptr, nodes):
     return _level_max_kernel(np.asarray(indptr, np.int64), nbr,
                              np.ascontiguousarray(nlev, np.int32),
                              np.asarray(ptr, np.int64), np.asarray(nodes, np.int64))
+
+
+def level_min_reference(u, v, lev, ptr, nodes):
+    """Slow twin of :func:`level_min`: every outside vertex checked in plain Python.
+
+    For each clique ``C``, ``x`` extends it down to level ``min_c lev(x, c)`` when
+    ``x`` is adjacent to every member; the result is one more than the largest
+    such level, 0 when no ``x`` is adjacent to all of ``C``.
+    """
+    adj = {}
+    for a, b, t in zip(np.asarray(u).tolist(), np.asarray(v).tolist(),
+                       np.asarray(lev).tolist()):
+        adj.setdefault(a, {})[b] = t
+        adj.setdefault(b, {})[a] = t
+    out = np.empty(len(ptr) - 1, np.int32)
+    for k in range(len(ptr) - 1):
+        members = [int(c) for c in nodes[ptr[k]:ptr[k + 1]]]
+        # the vertices adjacent to every member, members excluded
+        common = set.intersection(*(set(adj.get(c, ())) for c in members))
+        best = -1
+        for x in common - set(members):
+            best = max(best, min(adj[x][c] for c in members))
+        out[k] = best + 1
+    return out
 
 
 def candidates_reference(n, u, v, lev):

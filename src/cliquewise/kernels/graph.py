@@ -15,12 +15,19 @@ sorted, so no per-row sort is needed.
 :func:`find_edge` is the binary search used by the other kernels to look up one
 pair, and :func:`intersect_sorted` the intersection of two sorted id lists (a
 linear merge, or a galloping search when one list is much shorter) that the
-clique kernels run on neighbour rows. ``*_reference`` are the scipy / numpy twins
-used in tests.
+clique kernels run on neighbour rows. :func:`degeneracy_kernel` is the
+linear-time smallest-last order behind ``cliques.degeneracy_order`` and the
+clique searches. :func:`prefetch_member_rows` asks the CPU early for the CSR rows
+of the members of a vertex set a few sets ahead, for the kernels that walk a long
+list of small sets (``level_min``, ``incidence``), whose rows lie at random places
+in memory. ``*_reference`` are the scipy / numpy twins used in tests.
 """
 
 import numba
 import numpy as np
+from llvmlite import ir
+from numba.core import cgutils, types
+from numba.extending import intrinsic
 
 __all__ = [
     "csr_from_edges",
@@ -31,6 +38,10 @@ __all__ = [
     "intersect_merge",
     "intersect_reference",
     "bit_length",
+    "degeneracy_kernel",
+    "prefetch",
+    "prefetch_member_rows",
+    "PREFETCH_AHEAD",
 ]
 
 # Kernels that allocate nothing are compiled without numba's reference counting:
@@ -136,6 +147,62 @@ def csr_from_edges(n, u, v, lev, nbr_dtype=None):
     eid = np.empty(m2, np.int64)
     _csr_fill(n, u, v, lev, indptr, nbr, nlev, eid)
     return indptr, nbr, nlev, eid
+
+
+# --------------------------------------------------------------------------
+# degeneracy order
+# --------------------------------------------------------------------------
+@numba.njit(nogil=True, cache=True)
+def degeneracy_kernel(indptr, nbr):
+    """Smallest-last order and core numbers (see ``cliques.degeneracy_order``).
+
+    Matula and Beck's bucket queue in the array layout of Batagelj and Zaversnik:
+    linear in the size of the CSR.
+    """
+    n = indptr.shape[0] - 1
+    deg = np.empty(n, np.int64)
+    md = 0
+    for x in range(n):
+        deg[x] = indptr[x + 1] - indptr[x]
+        md = max(md, deg[x])
+    bins = np.zeros(md + 1, np.int64)
+    for x in range(n):
+        bins[deg[x]] += 1
+    start = 0
+    for d in range(md + 1):
+        c = bins[d]
+        bins[d] = start
+        start += c
+    pos = np.empty(n, np.int64)
+    vert = np.empty(n, np.int64)
+    for x in range(n):
+        pos[x] = bins[deg[x]]
+        vert[pos[x]] = x
+        bins[deg[x]] += 1
+    for d in range(md, 0, -1):
+        bins[d] = bins[d - 1]
+    bins[0] = 0
+    # vert is sorted by current degree and bins[d] is the first slot of degree d;
+    # taking vertices in slot order and moving each higher-degree neighbour one
+    # bin down keeps that true (Batagelj and Zaversnik's layout).
+    for i in range(n):
+        x = vert[i]
+        dx = deg[x]
+        for k in range(indptr[x], indptr[x + 1]):
+            w = nbr[k]
+            dw = deg[w]
+            if dw > dx:
+                pw = pos[w]
+                ps = bins[dw]
+                y = vert[ps]
+                if y != w:
+                    pos[w] = ps
+                    vert[pw] = y
+                    pos[y] = pw
+                    vert[ps] = w
+                bins[dw] += 1
+                deg[w] = dw - 1
+    return vert, deg
 
 
 # --------------------------------------------------------------------------
@@ -251,6 +318,61 @@ def find_edge(indptr, nbr, a, b):
     if lo < indptr[a + 1] and nbr[lo] == b:
         return lo
     return -1
+
+
+# --------------------------------------------------------------------------
+# software prefetch
+# --------------------------------------------------------------------------
+@intrinsic
+def prefetch(typingctx, arr, i):
+    """Hint the CPU to load the cache line of ``arr[i]`` (``llvm.prefetch``).
+
+    A hint only: it never faults, even when ``i`` lies outside ``arr``, and it
+    changes no value.
+    """
+    if not isinstance(arr, types.Array) or not isinstance(i, types.Integer):
+        return None
+    sig = types.void(arr, i)
+
+    def codegen(context, builder, signature, args):
+        aryty = signature.args[0]
+        ary = context.make_array(aryty)(context, builder, args[0])
+        ptr = cgutils.get_item_pointer(context, builder, aryty, ary, [args[1]])
+        i8p = builder.bitcast(ptr, ir.IntType(8).as_pointer())
+        i32 = ir.IntType(32)
+        fnty = ir.FunctionType(ir.VoidType(), [i8p.type, i32, i32, i32])
+        fn = builder.module.declare_intrinsic("llvm.prefetch", [i8p.type], fnty)
+        # read access, keep in all cache levels, data cache
+        builder.call(fn, [i8p, ir.Constant(i32, 0), ir.Constant(i32, 3),
+                          ir.Constant(i32, 1)])
+        return context.get_dummy_value()
+
+    return sig, codegen
+
+
+PREFETCH_AHEAD = 16  # sets; the row pointers are asked for twice as far ahead
+
+
+@_leaf
+def prefetch_member_rows(indptr, nbr, aux, ptr, nodes, k):
+    """Prefetch for set ``k`` of the list ``ptr``/``nodes`` (a loop at set ``k``).
+
+    Asks for ``indptr`` of the members of set ``k + 2 * PREFETCH_AHEAD`` and for the
+    first line of ``nbr`` and ``aux`` (``nlev`` or ``eid``) in the rows of the
+    members of set ``k + PREFETCH_AHEAD``, whose row pointers the first request
+    has brought in by then. Nothing happens past the end of the list.
+    """
+    K = ptr.shape[0] - 1
+    kk = k + 2 * PREFETCH_AHEAD
+    if kk < K:
+        for i in range(ptr[kk], ptr[kk + 1]):
+            prefetch(indptr, nodes[i])
+    kk = k + PREFETCH_AHEAD
+    if kk < K:
+        for i in range(ptr[kk], ptr[kk + 1]):
+            q = indptr[nodes[i]]
+            prefetch(nbr, q)
+            prefetch(aux, q)
 
 
 def csr_from_edges_reference(n, u, v, lev):

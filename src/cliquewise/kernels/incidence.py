@@ -6,70 +6,82 @@ ids of the candidates holding edge ``e``, ascending. A candidate of size ``s``
 contributes ``s (s - 1) / 2`` entries, one per pair of its members, and every such
 pair must be an edge.
 
-Two passes over the candidates (count, then fill) with the same pair lookups, so
-memory is the output plus one counter per edge. Each lookup is a search in a sorted
-CSR row that starts from the previous hit (members are sorted), so the cost is the
-number of incidences times a small logarithmic factor.
+One pass over the candidates looks every pair up once and writes its edge id into
+a pair buffer, in candidate order, while counting the pairs of each edge; a
+counting sort by edge then scatters the candidate ids into their rows. The scatter
+visits the pairs in candidate order, so each row comes out ascending without a
+sort. Lookups walk the sorted CSR row of a member from its previous hit (members
+are sorted too), by steps or by binary search when the row is long, and the rows
+of the candidates a few places ahead are prefetched. Memory is the output, one
+counter per edge, and the pair buffer (4 bytes per incidence; 8 when there are
+``2**31`` edges or more).
 ``incidence_reference`` is the plain-Python twin used in tests.
 """
 
 import numba
 import numpy as np
 
+from cliquewise.kernels.graph import bit_length, prefetch_member_rows
+
 __all__ = ["incidence", "incidence_reference"]
 
 
-@numba.njit(nogil=True, cache=True, _nrt=False)  # no allocation: skip refcounting
-def _row_search(nbr, lo, hi, x):
-    """First position in ``nbr[lo:hi]`` holding a value ``>= x`` (binary search)."""
-    while lo < hi:
-        mid = (lo + hi) >> 1
-        if nbr[mid] < x:
-            lo = mid + 1
-        else:
-            hi = mid
-    return lo
-
-
 @numba.njit(nogil=True, cache=True)
-def _incidence_kernel(indptr, nbr, eid, ptr, nodes, n_edges):
+def _incidence_kernel(indptr, nbr, eid, ptr, nodes, n_edges, pair_e):
+    """Fill ``pair_e`` (one edge id per member pair) and counting-sort it by edge.
+
+    Returns ``(inc_ptr, inc_cand, bad)``; ``bad`` is the first candidate with a
+    pair that is not an edge (then the arrays are empty), else -1.
+    """
     K = ptr.shape[0] - 1
-    inc_ptr = np.zeros(n_edges + 1, np.int64)
-    # pass 1: count candidates per edge
+    # cnt[e + 2] counts edge e; after the prefix sum cnt[e + 1] is the start of row
+    # e, and the scatter advances it to the end of row e, i.e. the start of e + 1
+    cnt = np.zeros(n_edges + 2, np.int64)
+    t = np.int64(0)
     for k in range(K):
+        prefetch_member_rows(indptr, nbr, eid, ptr, nodes, k)
         lo = ptr[k]
         hi = ptr[k + 1]
-        for i in range(lo, hi):
+        for i in range(lo, hi - 1):
             a = nodes[i]
-            rlo = indptr[a]
-            rhi = indptr[a + 1]
+            q = np.int64(indptr[a])
+            qe = np.int64(indptr[a + 1])
+            search = (hi - 1 - i) * bit_length(qe - q) < qe - q
             for j in range(i + 1, hi):
                 b = nodes[j]
-                rlo = _row_search(nbr, rlo, rhi, b)
-                if rlo == rhi or nbr[rlo] != b:
-                    return inc_ptr, np.empty(0, np.int64), k
-                inc_ptr[eid[rlo] + 1] += 1
+                if search:
+                    r = qe
+                    while q < r:
+                        mid = (q + r) >> 1
+                        if nbr[mid] < b:
+                            q = mid + 1
+                        else:
+                            r = mid
+                else:
+                    while q < qe and nbr[q] < b:
+                        q += 1
+                if q == qe or nbr[q] != b:
+                    return np.zeros(1, np.int64), np.empty(0, np.int64), k
+                e = eid[q]
+                pair_e[t] = e
+                cnt[e + 2] += 1
+                t += 1
+                q += 1
     for e in range(n_edges):
-        inc_ptr[e + 1] += inc_ptr[e]
-    # pass 2: fill; candidates visited in id order, so each row comes out ascending
-    inc_cand = np.empty(inc_ptr[n_edges], np.int64)
-    fill = inc_ptr[:n_edges].copy()
+        cnt[e + 2] += cnt[e + 1]
+    inc_cand = np.empty(t, np.int64)
+    t = 0
     for k in range(K):
-        lo = ptr[k]
-        hi = ptr[k + 1]
-        for i in range(lo, hi):
-            a = nodes[i]
-            rlo = indptr[a]
-            rhi = indptr[a + 1]
-            for j in range(i + 1, hi):
-                rlo = _row_search(nbr, rlo, rhi, nodes[j])
-                e = eid[rlo]
-                inc_cand[fill[e]] = k
-                fill[e] += 1
-    return inc_ptr, inc_cand, -1
+        s = ptr[k + 1] - ptr[k]
+        for _ in range(s * (s - 1) // 2):
+            e1 = pair_e[t] + 1
+            inc_cand[cnt[e1]] = k
+            cnt[e1] += 1
+            t += 1
+    return cnt[: n_edges + 1], inc_cand, -1
 
 
-def incidence(indptr, nbr, eid, ptr, nodes, n_edges):
+def incidence(indptr, nbr, eid, ptr, nodes, n_edges, *, _wide=False):
     """Edge-to-candidate CSR.
 
     Parameters
@@ -93,10 +105,19 @@ def incidence(indptr, nbr, eid, ptr, nodes, n_edges):
     ------
     ValueError
         If a candidate has a pair of members that is not an edge.
+
+    Notes
+    -----
+    ``_wide`` (for tests) forces the int64 pair buffer used from ``2**31`` edges.
     """
+    ptr = np.asarray(ptr, np.int64)
+    sizes = np.diff(ptr)
+    n_pairs = int(np.sum(sizes * (sizes - 1) // 2))
+    wide = _wide or n_edges >= 2**31
+    pair_e = np.empty(n_pairs, np.int64 if wide else np.int32)
     inc_ptr, inc_cand, bad = _incidence_kernel(
-        np.asarray(indptr, np.int64), nbr, np.asarray(eid, np.int64),
-        np.asarray(ptr, np.int64), np.asarray(nodes, np.int64), np.int64(n_edges))
+        np.asarray(indptr, np.int64), nbr, np.asarray(eid, np.int64), ptr,
+        np.asarray(nodes, np.int64), np.int64(n_edges), pair_e)
     if bad >= 0:
         raise ValueError(f"candidate {bad} is not a clique of the graph, or not sorted")
     return inc_ptr, inc_cand
