@@ -1,8 +1,8 @@
 """Where stages run: an embedded dask cluster by default, or an existing one.
 
 By default stages run on a thread pool in this process, one thread per core: numba kernels compiled with ``nogil=True`` run side by side, nothing is
-serialised and a round trip costs microseconds, not the ~10 ms of a distributed
-client (which matters for an EM that maps once per iteration). ``workers=N``
+serialised and a round trip costs microseconds, not the milliseconds of a
+distributed client (which matters for an EM that maps once per iteration). ``workers=N``
 starts a ``dask.distributed`` LocalCluster of N worker processes on 127.0.0.1,
 which is what ``memory_limit`` needs to mean anything; ``scheduler=
 "tcp://HOST:PORT"`` joins a running cluster; ``dashboard=HOST:PORT`` runs the
@@ -146,8 +146,7 @@ class Engine:
         return results
 
     def _map_threads(self, func, items, args, kwargs, desc):
-        # Independent tasks need no graph: a plain pool keeps every core busy (dask's
-        # local scheduler measured 1.5-2x slower here on ingest's read tasks).
+        # Independent tasks need no task graph: a plain pool keeps every core busy.
         from concurrent.futures import wait, FIRST_EXCEPTION
 
         if len(items) == 1:
