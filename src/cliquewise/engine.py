@@ -121,6 +121,7 @@ class Engine:
         items = list(items)
         if not items:
             return []
+        func = _with_fault_point(func)
         if self.client is None:
             return self._map_threads(func, items, args, kwargs, desc)
         from dask.distributed import as_completed
@@ -165,6 +166,7 @@ class Engine:
 
     def submit(self, func: Callable, *args, **kwargs):
         """Run ``func`` on the cluster; returns an object with ``.result()``."""
+        func = _with_fault_point(func)
         if self.client is None:
             return _Done(func(*args, **kwargs))
         return self.client.submit(func, *args, pure=False, **kwargs)
@@ -200,6 +202,28 @@ class Engine:
 
     def __exit__(self, *exc):
         self.close()
+
+
+def _with_fault_point(func: Callable) -> Callable:
+    """``func`` itself, or (only when the crash tests set ``CLIQUEWISE_FAULT``) a
+    wrapper that passes the fault point ``task:<name>`` before calling it."""
+    if not os.environ.get("CLIQUEWISE_FAULT"):
+        return func
+    return _FaultTask(func)
+
+
+class _FaultTask:
+    """A task wrapper with a fault point (see ``store.fault_point``); picklable."""
+
+    def __init__(self, func: Callable):
+        self.func = func
+        self.__name__ = getattr(func, "__name__", "task")
+
+    def __call__(self, *args, **kwargs):
+        from cliquewise.store import fault_point
+
+        fault_point(f"task:{self.__name__}")
+        return self.func(*args, **kwargs)
 
 
 class _Done:

@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import Callable
 
 from cliquewise.engine import Engine, ResourceMonitor
-from cliquewise.store import Manifest, RunStore, StoreError, stage_key
+from cliquewise.store import Manifest, RunStore, StoreError, fault_point, stage_key
 
 log = logging.getLogger("cliquewise")
 
@@ -62,6 +62,8 @@ class _Substep:
         rec = self.ctx.substeps.setdefault(self.name, {"wall_seconds": 0.0, "cpu_seconds": 0.0})
         rec["wall_seconds"] = round(rec["wall_seconds"] + time.perf_counter() - self.t0, 4)
         rec["cpu_seconds"] = round(rec["cpu_seconds"] + time.process_time() - self.c0, 4)
+        if exc[0] is None:
+            fault_point(f"substep:{self.ctx.name}:{self.name}")
 
 
 @dataclass

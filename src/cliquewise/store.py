@@ -257,9 +257,9 @@ class RunStore:
             shutil.rmtree(trash, ignore_errors=True)
         os.replace(work, final)
         data = manifest.to_dict()
-        _fault_point(f"before-manifest:{manifest.stage}")
+        fault_point(f"before-manifest:{manifest.stage}")
         write_json_atomic(final / MANIFEST, data)
-        _fault_point(f"stage:{manifest.stage}")
+        fault_point(f"stage:{manifest.stage}")
         return data
 
     def invalidate(self, stage: str) -> None:
@@ -288,12 +288,13 @@ class RunStore:
     def unit_commit(work: Path, unit: str, files: Iterable[str], extra: dict | None = None) -> None:
         """Mark unit ``unit`` finished, recording its files' checksums."""
         (work / "units").mkdir(exist_ok=True)
+        fault_point(f"pre-unit:{unit}")  # the unit's files are written, its marker not yet
         info = {"files": {}, "extra": extra or {}}
         for rel in files:
             p = work / rel
             info["files"][rel] = {"bytes": p.stat().st_size, "checksum": file_checksum(p)}
         write_json_atomic(work / "units" / f"{unit}.json", info)
-        _fault_point(f"unit:{unit}")
+        fault_point(f"unit:{unit}")
 
     @staticmethod
     def unit_info(work: Path, unit: str) -> dict:
@@ -304,13 +305,26 @@ class RunStore:
 #
 # ``CLIQUEWISE_FAULT="PREFIX[@N]"`` makes the process kill itself with SIGKILL the
 # N-th time (default 1st) it passes a checkpoint whose name starts with PREFIX:
-# ``unit:<unit name>`` after a unit checkpoint, ``before-manifest:<stage>`` after a
-# stage folder is moved into place but before its manifest, ``stage:<stage>`` after
-# a stage completes. The crash tests use it to kill runs at exact points.
+#
+# * ``pre-unit:<unit>``         a unit's files are written but its marker is not;
+# * ``unit:<unit>``             after a unit checkpoint (marker written);
+# * ``substep:<stage>:<name>``  after a timed sub-step of a stage (see stage.py);
+# * ``task:<function>``         at the start of a task run by ``Engine.map`` or
+#                               ``Engine.submit``, in whichever process runs it (a
+#                               worker process on a LocalCluster);
+# * ``before-manifest:<stage>`` after a stage folder is moved into place but before
+#                               its manifest is written;
+# * ``stage:<stage>``           after a stage completes.
+#
+# With ``CLIQUEWISE_FAULT_ONCE=PATH`` the kill happens at most once across all
+# processes (the first to create PATH dies; a restarted worker does not). The
+# crash and worker-failure tests use these to kill runs at exact points. Nothing
+# happens when ``CLIQUEWISE_FAULT`` is unset.
 _fault_hits: dict[str, int] = {}
 
 
-def _fault_point(name: str) -> None:
+def fault_point(name: str) -> None:
+    """Kill this process (SIGKILL) here if ``CLIQUEWISE_FAULT`` asks for it (tests only)."""
     spec = os.environ.get("CLIQUEWISE_FAULT")
     if not spec:
         return
@@ -318,7 +332,15 @@ def _fault_point(name: str) -> None:
     if not name.startswith(prefix):
         return
     _fault_hits[prefix] = _fault_hits.get(prefix, 0) + 1
-    if _fault_hits[prefix] >= int(nth or 1):
-        import signal
+    if _fault_hits[prefix] < int(nth or 1):
+        return
+    once = os.environ.get("CLIQUEWISE_FAULT_ONCE")
+    if once:
+        try:
+            os.close(os.open(once, os.O_CREAT | os.O_EXCL | os.O_WRONLY))
+        except FileExistsError:
+            return
+    import signal
 
-        os.kill(os.getpid(), signal.SIGKILL)
+    os.kill(os.getpid(), signal.SIGKILL)
+
