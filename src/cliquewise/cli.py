@@ -169,6 +169,32 @@ def cmd_simulate(args) -> int:
     return 0
 
 
+# -- export (graph files and membership tables) ------------------------------------
+
+def _top_arg(text: str):
+    if str(text).strip().lower() == "all":
+        return "all"
+    try:
+        return int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"--top takes a whole number or 'all', not {text!r}") from None
+
+
+def cmd_export(args) -> int:
+    from cliquewise.analysis.export import DEFAULT_TOP, GRAPH_FORMATS, ExportError, export
+
+    top = args.top
+    if top is None:  # all groups for the tidy table, the strongest 100 otherwise
+        top = "all" if (args.format not in GRAPH_FORMATS and args.layout == "long") else DEFAULT_TOP
+    top = None if top == "all" else top
+    try:
+        path = export(args.run_dir, args.format, top=top, out=args.out, layout=args.layout)
+    except ExportError as exc:
+        raise _UserError(str(exc)) from None
+    print(path)
+    return 0
+
+
 def _mb(n) -> str:
     return f"{(n or 0) / 2**20:.0f} MB"
 
@@ -212,6 +238,17 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--levels", type=int, default=None, help="round intensities onto about this many values")
     r.add_argument("--events", action="store_true", help="one row per interaction with a time column")
     r.set_defaults(func=cmd_simulate)
+
+    r = sub.add_parser("export", help="the strongest groups as GraphML/GEXF, or a membership table")
+    r.add_argument("run_dir")
+    r.add_argument("--format", required=True, choices=["graphml", "gexf", "parquet", "csv"],
+                   help="graphml or gexf: a person-group graph; parquet or csv: the membership table")
+    r.add_argument("--top", type=_top_arg, metavar="N|all",
+                   help="the N strongest kept groups (default 100; all for the long table)")
+    r.add_argument("--layout", choices=["long", "wide"], default="long",
+                   help="membership table: one row per membership (long) or per person with a 0/1 column per group (wide)")
+    r.add_argument("--out", metavar="FILE", help="where to write (default RUN_DIR/exports/...)")
+    r.set_defaults(func=cmd_export)
     return p
 
 
