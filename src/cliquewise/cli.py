@@ -195,6 +195,74 @@ def cmd_export(args) -> int:
     return 0
 
 
+# -- batch (many networks, one run each) --------------------------------------------
+
+_BATCH_RUN_OPTIONS = {  # option -> (part of the settings, field)
+    "source": ("input", "source"), "target": ("input", "target"), "weight": ("input", "weight"),
+    "time": ("input", "time"), "since": ("input", "since"), "until": ("input", "until"),
+    "merge": ("input", "merge"), "on_invalid": ("input", "on_invalid"),
+    "max_cliques": ("candidates", "max_cliques"), "max_seconds": ("candidates", "max_seconds"),
+    "tol": ("fit", "tol"), "max_iter": ("fit", "max_iter"), "prune": ("fit", "prune"),
+}
+_BATCH_OPTIONS = ("network", "folders", "inside", "parallel", "threads_per_network", "heldout_fraction", "seed")
+
+
+def _batch_settings_from_args(args):
+    from cliquewise.batch import BatchSettings, load_batch_file, load_request
+    from cliquewise.config import Settings, parse_levels
+
+    if args.run_dir:
+        raise _UserError("cliquewise batch takes --batch-dir; each network's run is BATCH_DIR/runs/<network>")
+    new_input = args.edges or args.folders
+    if args.pipeline:
+        s, b = load_batch_file(args.pipeline)
+    elif args.batch_dir and not new_input and (Path(args.batch_dir) / "batch.json").exists():
+        s, b = load_request(args.batch_dir)  # resume a batch with the settings it started with
+    else:
+        s, b = Settings(), BatchSettings()
+    if args.edges:
+        s.input.edges, b.folders = args.edges, ""
+    if args.folders:
+        s.input.edges, b.folders = None, str(Path(args.folders).resolve())
+    if args.batch_dir:
+        b.dir = str(Path(args.batch_dir).resolve())
+    for opt in _BATCH_OPTIONS:
+        if getattr(args, opt) is not None:
+            setattr(b, opt, getattr(args, opt))
+    for opt, (part, name) in _BATCH_RUN_OPTIONS.items():
+        if getattr(args, opt) is not None:
+            setattr(getattr(s, part), name, getattr(args, opt))
+    if args.levels is not None:
+        s.candidates.levels = parse_levels(args.levels)
+    if args.no_accelerate:
+        s.fit.accelerate = False
+    _engine_from_args(s, args)
+    s.validate()
+    b.validate(s)
+    return s, b
+
+
+def cmd_batch(args) -> int:
+    from cliquewise.batch import run_batch
+
+    settings, batch = _batch_settings_from_args(args)
+    print(f"batch directory: {batch.dir}", file=sys.stderr)
+    out = run_batch(settings, batch, progress=not args.quiet)
+    for st in out["networks"]:
+        if st["state"] != "done":
+            note = f"failed: {st['error']}"
+        elif st["stages_run"]:
+            note = f"ran {', '.join(st['stages_run'])} ({st['seconds']:.1f} s)"
+        else:
+            note = "up to date" + ("" if st["row_reused"] else f", covariates computed ({st['seconds']:.1f} s)")
+        print(f"  {st['slug']:<24} {note}", file=sys.stderr)
+    print(out["covariates"])
+    if out["failed"]:
+        raise _UserError(f"{out['failed']} of {len(out['networks'])} networks failed (listed above and in "
+                         f"{Path(batch.dir) / 'status.json'}); run the same command again to retry them")
+    return 0
+
+
 def _mb(n) -> str:
     return f"{(n or 0) / 2**20:.0f} MB"
 
@@ -249,6 +317,27 @@ def build_parser() -> argparse.ArgumentParser:
                    help="membership table: one row per membership (long) or per person with a 0/1 column per group (wide)")
     r.add_argument("--out", metavar="FILE", help="where to write (default RUN_DIR/exports/...)")
     r.set_defaults(func=cmd_export)
+
+    r = sub.add_parser("batch", help="many networks: one resumable run each, and a covariates table")
+    _add_run_options(r)
+    for act in r._actions:  # the shared run options, worded for a batch
+        if act.dest == "run_dir":
+            act.help = argparse.SUPPRESS
+        elif act.dest == "pipeline":
+            act.help = "a batch file: a pipeline file (TOML) with a [batch] table; options below override it"
+        elif act.dest == "edges":
+            act.help = "one export holding every network, told apart by a network column (--network)"
+    g = r.add_argument_group("batch")
+    g.add_argument("--batch-dir", metavar="DIR", help="where the batch keeps its runs and covariates.parquet; "
+                   "alone, it resumes that batch")
+    g.add_argument("--network", metavar="COL", help="with --edges: the column naming each row's network (default network)")
+    g.add_argument("--folders", metavar="DIR", help="instead of --edges: one dataset per subfolder of DIR")
+    g.add_argument("--inside", metavar="PATH", help="with --folders: where the data sits inside each subfolder (e.g. export)")
+    g.add_argument("--parallel", type=int, metavar="N", help="networks at a time (default: one per core or worker thread)")
+    g.add_argument("--threads-per-network", type=int, metavar="N", help="engine threads inside each network")
+    g.add_argument("--heldout-fraction", type=float, metavar="F", help="share of each count held out for heldout_gain (default 0.5)")
+    g.add_argument("--seed", type=int, help="seed of the held-out split (default 0)")
+    r.set_defaults(func=cmd_batch)
     return p
 
 
