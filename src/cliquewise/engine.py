@@ -48,7 +48,26 @@ class EngineError(RuntimeError):
 def _quiet_dask_logs() -> None:
     for name in ("distributed", "distributed.worker", "distributed.scheduler", "distributed.nanny",
                  "distributed.core", "distributed.http.proxy", "distributed.utils_perf"):
-        logging.getLogger(name).setLevel(logging.ERROR)
+        logging.getLogger(name).setLevel(_dask_log_level())
+
+
+def dashboard_address(spec: str) -> str:
+    """``HOST:PORT`` for the dashboard: 127.0.0.1 unless a host is given explicitly.
+
+    >>> dashboard_address("8787"), dashboard_address(":8787"), dashboard_address("0.0.0.0:8787")
+    ('127.0.0.1:8787', '127.0.0.1:8787', '0.0.0.0:8787')
+    """
+    spec = str(spec).strip()
+    host, sep, port = spec.rpartition(":")
+    if not sep:
+        host, port = "", spec
+    return f"{host or '127.0.0.1'}:{port}"
+
+
+def _dask_log_level() -> int:
+    # dask's own error lines (a task failed, a worker died) repeat what our one-line
+    # error says; they are shown with --debug only
+    return logging.ERROR if logging.getLogger("cliquewise").isEnabledFor(logging.DEBUG) else logging.CRITICAL
 
 
 class Engine:
@@ -71,10 +90,15 @@ class Engine:
             from dask.distributed import Client, LocalCluster
 
             threads = s.threads or max(1, ncores // s.workers)
+            # the scheduler always serves HTTP (health checks); without a dashboard it
+            # gets a free port on 127.0.0.1, never the public default :8787
+            web = ({"dashboard_address": dashboard_address(s.dashboard)} if s.dashboard else
+                   {"dashboard_address": None, "scheduler_kwargs": {"dashboard": False,
+                                                                    "dashboard_address": "127.0.0.1:0"}})
             self._cluster = LocalCluster(
                 n_workers=s.workers, threads_per_worker=threads, processes=True,
                 memory_limit=s.memory_limit or "auto", host="127.0.0.1",
-                dashboard_address=s.dashboard or None, silence_logs=logging.ERROR,
+                silence_logs=_dask_log_level(), **web,
             )
             self.client = Client(self._cluster)
         elif s.dashboard:
@@ -82,7 +106,8 @@ class Engine:
 
             self._cluster = LocalCluster(
                 n_workers=1, threads_per_worker=s.threads or ncores, processes=False,
-                memory_limit=s.memory_limit or 0, dashboard_address=s.dashboard, silence_logs=logging.ERROR,
+                memory_limit=s.memory_limit or 0, dashboard_address=dashboard_address(s.dashboard),
+                silence_logs=_dask_log_level(),
             )
             self.client = Client(self._cluster)
         # without a client: dask's threaded scheduler in this process (lowest latency)
@@ -131,8 +156,9 @@ class Engine:
         if not desc or not self.settings.progress:
             try:
                 return self.client.gather(futures)
-            except BaseException:
+            except BaseException as exc:
                 self.client.cancel(futures)
+                _raise_worker_loss(exc, desc or func)
                 raise
         index = {f.key: i for i, f in enumerate(futures)}
         results: list[Any] = [None] * len(items)
@@ -141,8 +167,9 @@ class Engine:
                 for fut in as_completed(futures):
                     results[index[fut.key]] = fut.result()
                     bar(1)
-            except BaseException:
+            except BaseException as exc:
                 self.client.cancel(futures)
+                _raise_worker_loss(exc, desc or func)
                 raise
         return results
 
@@ -169,7 +196,7 @@ class Engine:
         func = _with_fault_point(func)
         if self.client is None:
             return _Done(func(*args, **kwargs))
-        return self.client.submit(func, *args, pure=False, **kwargs)
+        return _Future(self.client.submit(func, *args, pure=False, **kwargs), func)
 
     def scatter(self, data, broadcast: bool = True):
         if self.in_process:
@@ -224,6 +251,34 @@ class _FaultTask:
 
         fault_point(f"task:{self.__name__}")
         return self.func(*args, **kwargs)
+
+
+def _raise_worker_loss(exc: BaseException, what) -> None:
+    """Turn dask's ``KilledWorker`` (a task's worker died too often) into a clear error."""
+    try:
+        from distributed import KilledWorker
+    except ImportError:  # pragma: no cover - distributed is a dependency
+        return
+    if isinstance(exc, KilledWorker):
+        name = what if isinstance(what, str) else getattr(what, "__name__", "a task")
+        raise EngineError(
+            f"worker processes died repeatedly while running {name} (out of memory, or killed); finished "
+            f"units are checkpointed: fix the cause (e.g. a larger --memory-limit) and run 'cliquewise resume "
+            f"RUN_DIR'") from None
+
+
+class _Future:
+    """A distributed future whose ``.result()`` reports a lost worker clearly."""
+
+    def __init__(self, future, func):
+        self._future, self._func = future, func
+
+    def result(self):
+        try:
+            return self._future.result()
+        except Exception as exc:  # noqa: BLE001
+            _raise_worker_loss(exc, self._func)
+            raise
 
 
 class _Done:

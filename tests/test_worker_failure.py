@@ -1,0 +1,119 @@
+"""Worker processes killed during a run on a LocalCluster (127.0.0.1).
+
+A worker process kills itself with SIGKILL while it runs an enumeration unit or an
+EM part (``CLIQUEWISE_FAULT=task:...``, see ``store.fault_point``). With the fault
+firing once, dask reschedules the lost work on the restarted worker and the run
+completes with results identical to an undisturbed run (results do not depend
+on the engine, so the reference runs on in-process threads). When
+workers keep dying (the fault fires in every worker), the run stops with one
+clear line and a non-zero exit, nothing is marked complete that is not, and
+``cliquewise resume`` finishes the job with the same results.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from _support import run_cli
+
+from cliquewise.config import load_pipeline
+from cliquewise.engine import Engine, EngineSettings
+from cliquewise.pipeline import run_pipeline
+from cliquewise.store import RunStore
+
+pytestmark = pytest.mark.cluster
+
+JOB = """\
+[input]
+edges = "export/*.parquet"
+
+[candidates]
+edges_per_unit = 300
+
+[fit]
+checkpoint_every = 4
+tol = 1e-9
+max_iter = 10
+incidences_per_part = 6000
+"""
+
+TABLES = ("nodes", "cliques", "members")
+
+
+@pytest.fixture(scope="module")
+def job(tmp_path_factory):
+    """A small simulated export and an undisturbed run."""
+    from cliquewise.simulate import simulate
+
+    root = tmp_path_factory.mktemp("workers")
+    simulate(root, nodes=300, seed=5)
+    (root / "job.toml").write_text(JOB, encoding="utf-8")
+    ref = root / "reference"
+    # results do not depend on the engine: the reference runs on in-process threads
+    run_pipeline(settings(root, ref), progress=False)
+    fit = json.loads((ref / "fit" / "report.json").read_text())
+    enum = json.loads((ref / "enumerate" / "manifest.json").read_text())
+    assert enum["counts"]["units"] >= 4 and fit["parts"] >= 3  # work really spreads over workers
+    return root, ref
+
+
+def cluster() -> Engine:
+    return Engine(EngineSettings(workers=2, threads=1, progress=False))
+
+
+def settings(root: Path, run_dir: Path):
+    s = load_pipeline(root / "job.toml")
+    s.run_dir = str(run_dir)
+    return s
+
+
+def assert_same_results(a: Path, b: Path) -> None:
+    for t in TABLES:
+        pd.testing.assert_frame_equal(pd.read_parquet(a / "results" / f"{t}.parquet"),
+                                      pd.read_parquet(b / "results" / f"{t}.parquet"), check_exact=True)
+    np.testing.assert_array_equal(np.load(a / "fit" / "mu.npy", allow_pickle=False),
+                                  np.load(b / "fit" / "mu.npy", allow_pickle=False))
+
+
+@pytest.mark.parametrize("fault", ["task:_unit@2", "task:em_part@6"], ids=["enumerate", "fit"])
+def test_worker_killed_once_run_completes_identically(job, tmp_path, monkeypatch, fault):
+    root, ref = job
+    once = tmp_path / "fired"
+    # the workers inherit this environment when they start (and restart)
+    monkeypatch.setenv("CLIQUEWISE_FAULT", fault)
+    monkeypatch.setenv("CLIQUEWISE_FAULT_ONCE", str(once))
+    with cluster() as eng:
+        pids = set(eng.client.run(os.getpid).values())
+        run_pipeline(settings(root, tmp_path / "run"), engine=eng, progress=False)
+        after = set(eng.client.run(os.getpid).values())
+    assert once.exists(), "no worker was killed"
+    assert os.getpid() not in pids
+    assert pids - after, "the killed worker was replaced by a new process"
+    assert_same_results(tmp_path / "run", ref)
+
+
+def test_workers_that_keep_dying_stop_the_run_clearly_then_resume(job, tmp_path):
+    root, ref = job
+    run_dir = tmp_path / "run"
+    env = dict(os.environ, CLIQUEWISE_FAULT="task:_unit", DASK_DISTRIBUTED__SCHEDULER__ALLOWED_FAILURES="1")
+    env.pop("CLIQUEWISE_FAULT_ONCE", None)
+    proc = subprocess.run([sys.executable, "-m", "cliquewise.cli", "--quiet", "run", str(root / "job.toml"),
+                           "--run-dir", str(run_dir), "--workers", "2", "--threads", "1"],
+                          capture_output=True, text=True, env=env, timeout=180)
+    assert proc.returncode == 2, proc.stderr
+    errors = [ln for ln in proc.stderr.splitlines() if ln.startswith("cliquewise: error:")]
+    assert len(errors) == 1 and "Traceback" not in proc.stderr, proc.stderr
+    assert "worker processes died" in errors[0] and "enumerate: cliques" in errors[0] and "cliquewise resume" in errors[0]
+    store = RunStore(run_dir, create=False)
+    assert store.verify("split")[0] and not store.verify("enumerate")[0]
+    rc, _, err = run_cli("resume", run_dir)
+    assert rc == 0, err
+    assert_same_results(run_dir, ref)
