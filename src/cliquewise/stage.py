@@ -93,6 +93,9 @@ def run_stage(store: RunStore, engine: Engine, name: str, params: dict, upstream
     if why not in ("not run yet",):
         log.info("%s: rerunning (%s)", name, why)
     work = store.begin(name, key)
+    # an older result of this stage is stale from here on: never leave it marked complete
+    # (with its downstream) if this attempt fails
+    store.invalidate(name)
     ctx = StageContext(name=name, store=store, engine=engine, work=work, params=params,
                        upstream={u: store.stage_dir(u) for u in upstream})
     with ResourceMonitor(engine) as mon:

@@ -215,6 +215,11 @@ class RunStore:
             return False, "manifest was edited (identity does not match its contents)"
         if digest(canonical_json(man.get("params"))) != man.get("params_hash"):
             return False, "manifest was edited (parameters do not match their hash)"
+        if key is None:  # without a key, check the chain: upstream stages are still what this one read
+            for up, ident in (man.get("upstream") or {}).items():
+                up_man = self.manifest(up)
+                if up_man is None or up_man.get("identity") != ident:
+                    return False, f"stage {up!r} changed or is incomplete since this stage ran (resume reruns both)"
         folder = self.stage_dir(stage)
         for rel, info in man.get("outputs", {}).items():
             p = folder / rel

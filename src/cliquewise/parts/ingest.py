@@ -311,6 +311,11 @@ def weights_to_float(col, path: str, name: str, examples: list, limit: int = 5):
     missing = np.array(pc.is_null(col).to_numpy(zero_copy_only=False), dtype=bool)
     if pa.types.is_integer(col.type) or pa.types.is_floating(col.type) or pa.types.is_boolean(col.type) \
             or pa.types.is_decimal(col.type):
+        if pa.types.is_integer(col.type) and col.type.bit_width == 64:  # float64 holds integers up to 2**53
+            n_big = pc.sum(pc.cast(pc.greater(col, 2**53), pa.int64())).as_py()
+            if n_big:
+                raise ExportError(f"{path}: column {name!r} has {n_big} integer weight{'s' * (n_big > 1)} above "
+                                  f"2**53, which float64 would round; scale them down")
         w = pc.cast(col, pa.float64()).to_numpy(zero_copy_only=False)
         return w, np.zeros(len(w), bool), missing
     if pa.types.is_string(col.type) or pa.types.is_large_string(col.type):

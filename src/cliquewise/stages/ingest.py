@@ -76,6 +76,7 @@ def run(ctx: StageContext, inputs: list[dict]) -> dict:
             tasks = parts.plan_tasks(files, p["rows_per_task"])
         except parts.ExportError as exc:
             raise InputError(str(exc)) from None
+        check_parquet_schemas(tasks, cols)
 
     total_rows = sum(t.rows for t in tasks if t.rows >= 0) + sum(
         max(1, os.path.getsize(t.path) // 16) for t in tasks if t.rows < 0)
@@ -178,13 +179,79 @@ def run(ctx: StageContext, inputs: list[dict]) -> dict:
     if rows_into_merge != counts["rows_kept"]:
         raise RuntimeError("internal accounting error: rows lost between map and aggregate")
     if pairs == 0:
+        where = files[0] if len(files) == 1 else f"{files[0]} and {len(files) - 1} more file{'s' * (len(files) > 2)}"
+        why = {"outside_window": f"with {cols.time!r} outside the window",
+               "null_label": f"with a missing {cols.source!r} or {cols.target!r}",
+               "invalid_weight": f"with an invalid {cols.weight!r}",
+               "self_loop": f"self-loops ({cols.source!r} = {cols.target!r})",
+               "zero_weight": f"with {cols.weight!r} = 0"}
         raise InputError(
-            f"{files[0]}: no usable interaction left after reading {report['rows_read']} rows "
-            f"(dropped: {', '.join(f'{v} {k}' for k, v in dropped.items() if v) or 'none; the input is empty'})")
+            f"{where}: no usable interaction left after reading {report['rows_read']} rows (dropped: "
+            f"{', '.join(f'{v} {why[k]}' for k, v in dropped.items() if v) or 'none; the input is empty'})")
+    overflow = [b for b, a in agg_info.items() if a["w_max"] is not None and not math.isfinite(a["w_max"])]
+    if overflow:
+        n = _count_infinite(work, overflow)
+        raise InputError(
+            f"{files[0]}: column {cols.weight!r}: merging duplicate rows overflows float64 for {n} pair"
+            f"{'s' * (n != 1)} (sums above 1.8e308); scale the weights down or use --merge max")
     write_json_atomic(work / "report.json", report)
     return {"rows_read": report["rows_read"], "rows_kept": report["rows_kept"], "pairs": pairs,
             "nodes": n_nodes, "rows_dropped": report["rows_dropped_total"], "buckets": n_buckets,
             "read_tasks": len(tasks)}
+
+
+LABEL_TYPES = (pa.types.is_integer, pa.types.is_string, pa.types.is_large_string, pa.types.is_floating,
+               pa.types.is_null)
+WEIGHT_TYPES = (pa.types.is_integer, pa.types.is_floating, pa.types.is_decimal, pa.types.is_boolean,
+                pa.types.is_string, pa.types.is_large_string, pa.types.is_null)
+
+
+def check_parquet_schemas(tasks, cols) -> None:
+    """Every Parquet file has the columns asked for, in types we can read.
+
+    Reads footers only. The first problem stops the run with one line naming the
+    file, the column, its type and the number of rows in that file.
+    """
+    seen = set()
+    for t in tasks:
+        if t.kind != "parquet" or t.path in seen:
+            continue
+        seen.add(t.path)
+        try:
+            pf = pq.ParquetFile(t.path)
+        except Exception:  # noqa: BLE001 - plan_tasks reported unreadable files already
+            continue
+        schema, rows = pf.schema_arrow, pf.metadata.num_rows
+        checks = [(cols.source, LABEL_TYPES, "labels (text or integers)"),
+                  (cols.target, LABEL_TYPES, "labels (text or integers)")]
+        if cols.weight:
+            checks.append((cols.weight, WEIGHT_TYPES, "weights (numbers)"))
+        missing = [c for c, _, _ in checks if c not in schema.names]
+        if cols.time and cols.time not in schema.names:
+            missing.append(cols.time)
+        if missing:
+            raise InputError(
+                f"{t.path}: missing column{'s' * (len(missing) > 1)} {', '.join(repr(m) for m in missing)} "
+                f"({_rows(rows)}); found {', '.join(repr(f) for f in schema.names)} "
+                f"(rename with --source/--target/--weight/--time)")
+        for col, allowed, what in checks:
+            typ = schema.field(col).type
+            base = typ.value_type if pa.types.is_dictionary(typ) else typ
+            if not any(ok(base) for ok in allowed):
+                raise InputError(f"{t.path}: column {col!r} has type {typ}, which cannot be read as {what} "
+                                 f"({_rows(rows)})")
+
+
+def _rows(n: int) -> str:
+    return f"{n} row{'s' * (n != 1)}"
+
+
+def _count_infinite(work, buckets) -> int:
+    n = 0
+    for b in buckets:
+        w = pq.read_table(work / f"edges/part-{b:05d}.parquet", columns=["weight"]).column(0).to_numpy()
+        n += int(np.isinf(w).sum())
+    return n
 
 
 def _write_labels(path, labels: pa.Array) -> None:
