@@ -184,3 +184,21 @@ def test_labels_xml_cannot_hold_are_refused(tmp_path):
     assert not (tmp_path / "x.graphml").exists()
     # the tables carry it unchanged
     assert "bell\x07" in set(ex.membership_long(run).label)
+
+
+def test_exports_carry_the_caution(lesmis_run, tmp_path):
+    import xml.etree.ElementTree as ET
+
+    import pyarrow.parquet as pq
+
+    want = lesmis_run.summary()["caution"]
+    assert "not intent" in want
+    H = nx.read_graphml(ex.write_graph(lesmis_run, tmp_path / "c.graphml", fmt="graphml", top=3))
+    assert H.graph["caution"] == want
+    # GEXF keeps it in <meta><description>; read with the standard library's XML parser
+    root = ET.parse(ex.write_graph(lesmis_run, tmp_path / "c.gexf", fmt="gexf", top=3)).getroot()
+    ns = {"g": "http://www.gexf.net/1.2draft"}
+    assert root.find("g:meta/g:description", ns).text == want
+    assert nx.read_gexf(tmp_path / "c.gexf").number_of_nodes() > 3  # still a valid GEXF for networkx
+    path = ex.export(lesmis_run.path, "parquet", top=3, out=tmp_path / "c.parquet")
+    assert pq.read_schema(path).metadata[b"caution"].decode() == want

@@ -57,7 +57,8 @@ import pyarrow.parquet as pq
 from cliquewise.config import ConfigError, EngineConfig, Settings
 from cliquewise.engine import Engine, EngineSettings
 from cliquewise.stage import InputError
-from cliquewise.store import RunStore, StoreError, canonical_json, digest, read_json, write_json_atomic
+from cliquewise.store import (RunStore, StoreError, canonical_json, digest, fault_point, read_json,
+                              write_json_atomic)
 
 ROW_FILE = "covariates.json"
 
@@ -346,6 +347,7 @@ def run_network(item: dict, opts: dict) -> dict:
             out["row"] = network_covariates(s.run_dir, heldout_fraction=opts["heldout_fraction"], seed=opts["seed"])
             write_json_atomic(row_path, {"key": key, "params": cparams, "row": out["row"]})
         out["state"] = "done"
+        fault_point(f"batch-network:{item['slug']}")  # crash tests only
     except Exception as exc:  # noqa: BLE001 - one network's failure must not stop the others
         msg = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
         known = isinstance(exc, (InputError, ConfigError, StoreError))

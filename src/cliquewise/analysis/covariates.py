@@ -7,12 +7,15 @@ is explained in ``docs/outputs.md``; in short:
 * size of the export: ``nodes``, ``edges``, ``weight_total``;
 * the decomposition: ``candidates``, ``groups_kept``, ``redundancy``,
   ``largest_group``, ``memberships_per_node``, ``converged``;
-* how concentrated the structure is: ``concentration`` (fraction of kept groups
-  that carry 90% of the fitted weight) and ``error_10`` / ``error_25`` (relative
-  Frobenius error of the fitted rates when only the strongest 10% / 25% of the
-  kept groups are kept);
-* fit on held-out counts: ``heldout_gain`` (held-out Poisson log-likelihood per
-  held-out interaction, over a degree-corrected independence model).
+* how concentrated the structure is: ``concentration`` (fraction of kept groups,
+  strongest first, that carry 90% of the fitted weight), the same for the
+  spectral energy (``concentration_spectral``: eigenpairs needed over nodes with
+  an edge), and ``error_10`` /
+  ``error_25`` (relative Frobenius error over all pairs when only the strongest
+  10% / 25% of the kept groups keep their fitted intensities, no refit);
+* fit on held-out counts: ``heldout_gain`` (nats per held-out interaction by
+  which the groups beat a degree-corrected independence model on a binomial
+  thinning of the counts).
 
 The curve and held-out numbers come from :mod:`cliquewise.analysis.curves` and
 :mod:`cliquewise.analysis.heldout`; this module only gathers them.
@@ -25,7 +28,7 @@ import numpy as np
 from cliquewise.api import Run
 
 COLUMNS = ["nodes", "edges", "weight_total", "candidates", "groups_kept", "redundancy", "concentration",
-           "error_10", "error_25", "memberships_per_node", "largest_group", "heldout_gain", "converged"]
+           "concentration_spectral", "error_10", "error_25", "memberships_per_node", "largest_group", "heldout_gain", "converged"]
 CONCENTRATION_LEVEL = 0.9
 ERROR_FRACTIONS = (0.1, 0.25)
 
@@ -62,6 +65,7 @@ def network_covariates(run_dir, heldout_fraction: float = 0.5, seed: int = 0) ->
     mem = run.members()
     memberships = int(mem.clique_id.isin(kept.clique_id.to_numpy()).sum())
     err = error_at(run_dir, fractions=ERROR_FRACTIONS)
+    conc = concentration(run_dir, level=CONCENTRATION_LEVEL)
     held = heldout_check(run_dir, fraction=heldout_fraction, seed=seed)
     row = {
         "nodes": int(s["nodes"]),
@@ -70,7 +74,8 @@ def network_covariates(run_dir, heldout_fraction: float = 0.5, seed: int = 0) ->
         "candidates": int(s["candidates"]),
         "groups_kept": int(s["groups_kept"]),
         "redundancy": float(s["redundancy"]),
-        "concentration": float(concentration(run_dir, level=CONCENTRATION_LEVEL)["groups_fraction"]),
+        "concentration": float(conc["groups_fraction"]),
+        "concentration_spectral": float(conc["spectral_fraction"]),
         "error_10": float(_at(err, ERROR_FRACTIONS[0])),
         "error_25": float(_at(err, ERROR_FRACTIONS[1])),
         "memberships_per_node": memberships / s["nodes"] if s["nodes"] else float("nan"),

@@ -12,7 +12,8 @@ groups, so they never collide with labels and never need quoting. Labels travel 
 data, so commas, quotes, newlines, tabs and any unicode survive a round trip;
 characters XML 1.0 cannot hold at all (most control characters) are refused with a
 message, since silently changing a person's label would be worse. Column meanings
-are in ``docs/outputs.md``.
+are in ``docs/outputs.md``. Graph files and Parquet tables carry the run's
+caution (the model describes interaction patterns, not intent).
 """
 
 from __future__ import annotations
@@ -21,6 +22,8 @@ import io
 import os
 import re
 from pathlib import Path
+
+from xml.sax.saxutils import escape as xml_escape
 
 import numpy as np
 import pandas as pd
@@ -74,8 +77,9 @@ def group_graph(run, top: int | None = DEFAULT_TOP, fmt: str = "graphml"):
         raise ExportError(f"graph format must be one of {', '.join(GRAPH_FORMATS)}, not {fmt!r}")
     if top is not None and top < 1:
         raise ExportError("--top must be at least 1 (or 'all')")
-    src = _open(run).to_networkx(top=top)
-    G = nx.Graph(name="cliquewise groups")
+    run = _open(run)
+    src = run.to_networkx(top=top)
+    G = nx.Graph(name="cliquewise groups", caution=caution(run))
     for node, data in src.nodes(data=True):
         if data["kind"] == "group":
             cid = int(node[1])
@@ -128,7 +132,9 @@ def write_graph(run, path, fmt: str = "graphml", top: int | None = DEFAULT_TOP) 
         data = buf.getvalue().replace(b"\r", b"&#13;")
     else:
         nx.write_gexf(G, buf, encoding="utf-8", prettyprint=True)
-        data = buf.getvalue()
+        # GEXF has no graph attributes; the caution goes into <meta><description>
+        note = f"<description>{xml_escape(G.graph['caution'])}</description></meta>".encode("utf-8")
+        data = buf.getvalue().replace(b"</meta>", note, 1)
     return _write_bytes(Path(path), data)
 
 
@@ -207,13 +213,22 @@ def membership_wide(run, top: int | None = DEFAULT_TOP) -> pd.DataFrame:
     return pd.concat([out, cols], axis=1)
 
 
-def write_table(df: pd.DataFrame, path, fmt: str = "parquet") -> Path:
-    """Write a membership table as Parquet or CSV (UTF-8, quoted as needed), atomically."""
+def write_table(df: pd.DataFrame, path, fmt: str = "parquet", note: str | None = None) -> Path:
+    """Write a membership table as Parquet or CSV (UTF-8, quoted as needed), atomically.
+
+    ``note`` (Parquet only) goes into the file's key-value metadata as ``caution``.
+    """
     if fmt not in TABLE_FORMATS:
         raise ExportError(f"table format must be one of {', '.join(TABLE_FORMATS)}, not {fmt!r}")
     buf = io.BytesIO()
     if fmt == "parquet":
-        df.to_parquet(buf, index=False)
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        table = pa.Table.from_pandas(df, preserve_index=False)
+        if note:
+            table = table.replace_schema_metadata({**(table.schema.metadata or {}), b"caution": note.encode("utf-8")})
+        pq.write_table(table, buf)
     else:
         buf.write(df.to_csv(index=False, lineterminator="\n").encode("utf-8"))
     return _write_bytes(Path(path), buf.getvalue())
@@ -261,7 +276,12 @@ def export(run_dir, fmt: str, top: int | None = DEFAULT_TOP, out=None, layout: s
         df = membership_wide(run, top=top)
     else:
         raise ExportError(f"--layout must be long or wide, not {layout!r}")
-    return write_table(df, out, fmt=fmt)
+    return write_table(df, out, fmt=fmt, note=caution(run))
+
+
+def caution(run: Run) -> str:
+    """The run's caution (``summary.json``), carried by every export that names people."""
+    return str(run.summary().get("caution", ""))
 
 
 def _write_bytes(path: Path, data: bytes) -> Path:
