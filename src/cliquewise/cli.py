@@ -263,6 +263,19 @@ def cmd_batch(args) -> int:
     return 0
 
 
+# -- report (one HTML file about a finished run) ------------------------------------
+
+def cmd_report(args) -> int:
+    from cliquewise.analysis.report import write_report
+
+    if not 0.0 < args.heldout_fraction < 1.0:
+        raise _UserError("--heldout-fraction must lie strictly between 0 and 1")
+    path = write_report(args.run_dir, args.out, top=args.top, heldout_fraction=args.heldout_fraction,
+                        seed=args.seed, refit=not args.no_refit, check_heldout=not args.no_heldout)
+    print(path)
+    return 0
+
+
 def _mb(n) -> str:
     return f"{(n or 0) / 2**20:.0f} MB"
 
@@ -338,6 +351,17 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--heldout-fraction", type=float, metavar="F", help="share of each count held out for heldout_gain (default 0.5)")
     g.add_argument("--seed", type=int, help="seed of the held-out split (default 0)")
     r.set_defaults(func=cmd_batch)
+
+    r = sub.add_parser("report", help="one self-contained HTML report about a finished run")
+    r.add_argument("run_dir")
+    r.add_argument("--out", metavar="FILE", help="where to write (default RUN_DIR/report.html)")
+    r.add_argument("--top", type=int, default=20, metavar="N", help="strongest groups listed (default 20)")
+    r.add_argument("--heldout-fraction", type=float, default=0.5, metavar="F",
+                   help="share of each count held out for the held-out check (default 0.5)")
+    r.add_argument("--seed", type=int, default=0, help="seed of the held-out split (default 0)")
+    r.add_argument("--no-refit", action="store_true", help="compression curve without refitting (faster)")
+    r.add_argument("--no-heldout", action="store_true", help="skip the held-out check (it reruns the pipeline)")
+    r.set_defaults(func=cmd_report)
     return p
 
 
