@@ -1,24 +1,27 @@
 """Per-part functions of the fit stage.
 
 A *part* is a contiguous range of edges ``[lo, hi)`` of the incidence (edges in the
-edge store's order). Once, before the EM, each part's edges are grouped into
-classes with the same candidate set (``kernels/classes.py``), which is exact for
-the EM and much shorter than the edge list. Each EM step then sweeps the class
-incidence of every part. A part's candidates form a narrow id range, because
-candidates are numbered by the edge block that found them, so each part returns a
-short dense accumulator plus the offset where it starts.
+edge store's order). Once, before the EM, each part's edge -> candidate lists are
+put into a prefix tree (``kernels/prefixtree.py``): edges with the same list become
+one end node, and lists that start alike share their nodes, so an EM sweep does
+about half the work of the flat incidence. The candidates are then numbered in
+the order the trees use them (first use, parts in order), which keeps the ``mu``
+and ``acc`` entries one part touches close together; the stage works in that
+numbering and maps back at the end. Each EM step sweeps every part's tree and
+returns a dense accumulator over the part's id range plus the offset where it
+starts.
 """
 
 from __future__ import annotations
 
 from pathlib import Path
 
-import numba
 import numpy as np
 
-from cliquewise.kernels.classes import edge_classes
-from cliquewise.kernels.em import em_partial
+from cliquewise.kernels.prefixtree import build_tree, check_tree, first_seen_order, tree_sweep, tree_unsupported
 from cliquewise.store import load_npy, save_npy
+
+TREE_ARRAYS = ("cand", "depth", "end", "ey")
 
 
 def plan_parts(inc_ptr: np.ndarray, per_part: int) -> list[tuple[int, int]]:
@@ -39,97 +42,120 @@ def _load_edges(enum_dir: str, lo: int, hi: int):
     a, b = int(inc_ptr[0]), int(inc_ptr[-1])
     inc_cand = load_npy(d / "inc_cand.npy", mmap=True)[a:b]
     y = load_npy(d / "weight.npy", mmap=True)[lo:hi]
-    return np.ascontiguousarray(inc_ptr), np.ascontiguousarray(inc_cand), np.ascontiguousarray(y)
+    return (np.ascontiguousarray(inc_ptr, np.int64), np.ascontiguousarray(inc_cand, np.int64),
+            np.ascontiguousarray(y, np.float64))
 
 
-def classes_part(index: int, rng: tuple[int, int], enum_dir: str, out_dir: str) -> dict:
-    """Group one part's edges into classes (same candidate set) and write them.
+def _files(out: Path, index: int, stem: str = "p") -> list[Path]:
+    return [out / f"{stem}{index:05d}.{name}.npy" for name in TREE_ARRAYS]
 
-    Writes ``{out_dir}/p{index:05d}.ptr/.cand/.y.npy``; returns the part's candidate
-    id range and sizes.
+
+def tree_part(index: int, rng: tuple[int, int], enum_dir: str, out_dir: str, rank, by_rank) -> dict:
+    """Build one part's prefix tree (global candidate ids) and write it.
+
+    Writes ``{out_dir}/g{index:05d}.cand/.depth/.end/.ey.npy``.
     """
     lo, hi = rng
     inc_ptr, inc_cand, y = _load_edges(enum_dir, lo, hi)
-    cls_ptr, cls_cand, cls_y, _ = edge_classes(inc_ptr, inc_cand, y)
+    cand, depth, end, ey = build_tree(inc_ptr, inc_cand, y, np.asarray(rank), np.asarray(by_rank))
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    files = []
-    if len(cls_cand) and cls_cand.max() < 2**31 - 1:
-        cls_cand = cls_cand.astype(np.int32)  # half the memory traffic of the sweep
-    for name, arr in (("ptr", cls_ptr), ("cand", cls_cand), ("y", cls_y)):
-        f = out / f"p{index:05d}.{name}.npy"
+    for f, arr in zip(_files(out, index, "g"), (cand, depth, end, ey)):
         save_npy(f, arr)
-        files.append(f.name)
-    return {"index": index, "files": files, "edges": hi - lo, "incidences": int(len(inc_cand)),
-            "classes": int(len(cls_y)), "class_incidences": int(len(cls_cand)),
-            "cand_lo": int(cls_cand.min()) if len(cls_cand) else 0,
-            "cand_hi": int(cls_cand.max()) if len(cls_cand) else -1}
+    return {"index": index, "edges": hi - lo, "incidences": int(len(inc_cand)), "nodes": int(len(cand)),
+            "ends": int(len(end))}
 
 
-_CLASS_CACHE: dict = {}
-_CLASS_CACHE_LIMIT = 64
+def number_candidates(part_list: list[dict], out_dir: str, n_cand: int) -> np.ndarray:
+    """The candidates' new ids, by first use in the trees (parts in order).
+
+    Candidates no tree uses (none in practice: every candidate's pairs are edges)
+    come last, in id order.
+    """
+    out = Path(out_dir)
+    new_id = np.full(n_cand, -1, np.int64)
+    nxt = 0
+    for part in part_list:
+        nxt = first_seen_order(load_npy(_files(out, part["index"], "g")[0], mmap=True), new_id, nxt)
+    rest = np.flatnonzero(new_id < 0)
+    new_id[rest] = nxt + np.arange(len(rest))
+    return new_id
 
 
-def _load_classes(cls_dir: str, index: int):
-    """A part's class arrays, kept in this process between EM steps.
+def localize_part(part: dict, out_dir: str, new_id) -> dict:
+    """Renumber one tree's candidates and store them relative to the part's lowest id.
+
+    Writes ``{out_dir}/p{index:05d}.*.npy`` (``cand`` as uint32 when the id range
+    allows, ``depth`` as uint16 when the tree is shallow enough) and removes the
+    ``g*`` files. Returns the part record with ``cand_lo``/``cand_hi``.
+    """
+    out = Path(out_dir)
+    src = _files(out, part["index"], "g")
+    cand, depth, end, ey = (load_npy(f) for f in src)
+    cand = np.asarray(new_id)[cand]
+    lo = int(cand.min()) if len(cand) else 0
+    hi = int(cand.max()) if len(cand) else -1
+    rel = cand - lo
+    if hi - lo < 2**32 - 1:
+        rel = rel.astype(np.uint32)  # half the memory traffic of the sweep
+    if len(depth) and depth.max() < 2**16 - 1:
+        depth = depth.astype(np.uint16)
+    for f, arr in zip(_files(out, part["index"]), (rel, depth, end, ey)):
+        save_npy(f, arr)
+    for f in src:
+        f.unlink()
+    return {**part, "files": [f.name for f in _files(out, part["index"])], "cand_lo": lo, "cand_hi": hi}
+
+
+_TREE_CACHE: dict = {}
+_TREE_CACHE_LIMIT = 64
+
+
+def _load_tree(tree_dir: str, part: dict):
+    """A part's tree arrays, checked once and kept in this process between EM steps.
 
     Keyed by path and modification time, so a rewritten part is read again. The
     arrays are what the fit sweeps every step anyway (memory linear in incidences).
     """
-    d = Path(cls_dir)
-    files = [d / f"p{index:05d}.{n}.npy" for n in ("ptr", "cand", "y")]
-    key = (str(d), index, tuple(f.stat().st_mtime_ns for f in files))
-    hit = _CLASS_CACHE.get(key)
+    files = _files(Path(tree_dir), part["index"])
+    key = (str(tree_dir), part["index"], tuple(f.stat().st_mtime_ns for f in files))
+    hit = _TREE_CACHE.get(key)
     if hit is None:
-        if len(_CLASS_CACHE) >= _CLASS_CACHE_LIMIT:
-            _CLASS_CACHE.clear()
-        hit = _CLASS_CACHE[key] = tuple(load_npy(f) for f in files)
+        if len(_TREE_CACHE) >= _TREE_CACHE_LIMIT:
+            _TREE_CACHE.clear()
+        arrays = tuple(load_npy(f) for f in files)
+        check_tree(*arrays, part["cand_hi"] - part["cand_lo"] + 1)
+        hit = _TREE_CACHE[key] = arrays
     return hit
 
 
 def clear_cache() -> None:
-    """Forget cached class arrays (the fit stage calls this when it ends)."""
-    _CLASS_CACHE.clear()
+    """Forget cached trees (the fit stage calls this when it ends)."""
+    _TREE_CACHE.clear()
 
 
-def em_part(part: dict, cls_dir: str, mu: np.ndarray, want_loglik: bool = True) -> dict:
+def em_part(part: dict, tree_dir: str, mu: np.ndarray, want_loglik: bool = True) -> dict:
     """The map of one EM step on one part: accumulator slice and ``sum Y log lambda``."""
     c_lo, c_hi = part["cand_lo"], part["cand_hi"]
     if c_hi < c_lo:
         return {"cand_lo": 0, "acc": np.zeros(0), "loglik": 0.0}
-    ptr, cand, y = _load_classes(cls_dir, part["index"])
+    cand, depth, end, ey = _load_tree(tree_dir, part)
     acc = np.zeros(c_hi - c_lo + 1, np.float64)
-    ll = em_partial(ptr, cand, y, mu, acc, c_lo, want_loglik)
+    ll = tree_sweep(cand, depth, end, ey, mu[c_lo:c_hi + 1], acc, want_loglik)
     return {"cand_lo": c_lo, "acc": acc, "loglik": float(ll)}
 
 
-@numba.njit(nogil=True, cache=True)
-def _unsupported(inc_ptr, inc_cand, mu_kept, mu_full):
-    """For each edge left with no positive rate, its strongest candidate before pruning."""
-    out = []
-    base = inc_ptr[0]
-    for i in range(inc_ptr.shape[0] - 1):
-        lam = 0.0
-        best, best_mu = -1, -1.0
-        for j in range(inc_ptr[i] - base, inc_ptr[i + 1] - base):
-            k = inc_cand[j]
-            lam += mu_kept[k]
-            if mu_full[k] > best_mu:
-                best, best_mu = k, mu_full[k]
-        if lam == 0.0 and best >= 0 and best_mu > 0.0:
-            out.append(best)
-    res = np.empty(len(out), np.int64)
-    for i in range(len(out)):
-        res[i] = out[i]
-    return res
+def support_part(part: dict, tree_dir: str, mu_kept: np.ndarray, mu_full: np.ndarray) -> np.ndarray:
+    """Candidates (stage numbering) to keep so that each of this part's ends keeps a positive rate."""
+    c_lo, c_hi = part["cand_lo"], part["cand_hi"]
+    if c_hi < c_lo:
+        return np.empty(0, np.int64)
+    cand, depth, end, _ = _load_tree(tree_dir, part)
+    rel = tree_unsupported(cand, depth, end, mu_kept[c_lo:c_hi + 1], mu_full[c_lo:c_hi + 1])
+    return rel.astype(np.int64) + c_lo
 
 
-def support_part(part: dict, cls_dir: str, mu_kept: np.ndarray, mu_full: np.ndarray) -> np.ndarray:
-    ptr, cand, _ = _load_classes(cls_dir, part["index"])
-    return _unsupported(np.asarray(ptr), np.asarray(cand), mu_kept, mu_full)
-
-
-def restore_support(engine, part_list, cls_dir: str, mu_kept, mu_full) -> np.ndarray:
-    """Candidate ids to un-prune so every edge class keeps a positive rate."""
-    res = engine.map(support_part, part_list, cls_dir, engine.scatter(mu_kept), engine.scatter(mu_full))
+def restore_support(engine, part_list, tree_dir: str, mu_kept, mu_full) -> np.ndarray:
+    """Candidate ids to un-prune so every edge keeps a positive rate."""
+    res = engine.map(support_part, part_list, tree_dir, engine.scatter(mu_kept), engine.scatter(mu_full))
     return np.unique(np.concatenate(res)) if res else np.empty(0, np.int64)

@@ -6,8 +6,11 @@ Writes  ``fit/mu.npy``           fitted intensities after pruning (0 = pruned);
         ``fit/trace.json``       log-likelihood at every accepted iterate, both phases;
         ``fit/report.json``      iterations, convergence, log-likelihood, groups kept.
 
-Each EM step maps :func:`parts.fitting.em_part` over parts of the edge range (about
-``incidences_per_part`` incidences each) with ``mu`` broadcast, and reduces the
+Before the EM each part of the edge range (about ``incidences_per_part``
+incidences) gets a prefix tree of its candidate lists, and the candidates are
+renumbered by first use (see :mod:`cliquewise.parts.fitting`); the EM runs in that
+numbering and maps back when it ends. Each EM step maps
+:func:`parts.fitting.em_part` over the parts with ``mu`` broadcast, and reduces the
 partial sums in part order, so the result does not depend on the engine. SQUAREM
 (on by default) wraps the step. ``mu`` and the trace are checkpointed every
 ``checkpoint_every`` iterations; a resumed fit continues from the checkpoint and
@@ -25,6 +28,7 @@ import shutil
 import numpy as np
 
 from cliquewise.kernels.em import fit_em, loglik_constant, penalty
+from cliquewise.kernels.prefixtree import candidate_rank
 from cliquewise.parts import fitting as parts
 from cliquewise.stage import StageContext
 from cliquewise.store import RunStore, load_npy, read_json, save_npy, write_json_atomic
@@ -42,9 +46,9 @@ def params_from(settings) -> dict:
 class DistributedStep:
     """``step(mu) -> (EM image of mu, log-likelihood at mu)`` over the cluster."""
 
-    def __init__(self, ctx: StageContext, cls_dir, part_list, P):
+    def __init__(self, ctx: StageContext, tree_dir, part_list, P):
         self.ctx = ctx
-        self.cls_dir = str(cls_dir)
+        self.tree_dir = str(tree_dir)
         self.parts = part_list
         self.P = P
         self.evals = 0
@@ -52,7 +56,7 @@ class DistributedStep:
     def partial(self, mu, want_loglik=True):
         eng = self.ctx.engine
         mu_ref = eng.scatter(mu)
-        res = eng.map(parts.em_part, self.parts, self.cls_dir, mu_ref, want_loglik)
+        res = eng.map(parts.em_part, self.parts, self.tree_dir, mu_ref, want_loglik)
         acc = np.zeros(len(mu), np.float64)
         total = 0.0
         for r in res:  # part order: deterministic whatever the engine
@@ -118,31 +122,42 @@ def run(ctx: StageContext) -> dict:
     total_inc = int(inc_ptr[-1]) if len(inc_ptr) else 0
     per_part = min(p["incidences_per_part"], max(250_000, -(-total_inc // 8)))
     ranges = parts.plan_parts(np.asarray(inc_ptr), per_part)
-    cls_dir = work / "classes"
-    with ctx.substep("classes"):
-        if RunStore.unit_done(work, "classes"):
-            part_list = RunStore.unit_info(work, "classes")["parts"]
+    tree_dir = work / "trees"
+    with ctx.substep("trees"):
+        if RunStore.unit_done(work, "trees"):
+            part_list = RunStore.unit_info(work, "trees")["parts"]
         else:
-            part_list = ctx.engine.map(_classes_unit, list(enumerate(ranges)), str(enum_dir), str(cls_dir),
-                                       desc="fit: edge classes")
-            RunStore.unit_commit(work, "classes", [f"classes/{f}" for r in part_list for f in r["files"]],
-                                 {"parts": part_list})
-    step = DistributedStep(ctx, cls_dir, part_list, P)
+            rank = candidate_rank(sizes * (sizes - 1) // 2)
+            by_rank = np.argsort(rank)
+            built = ctx.engine.map(_tree_unit, list(enumerate(ranges)), str(enum_dir), str(tree_dir),
+                                   ctx.engine.scatter(rank), ctx.engine.scatter(by_rank), desc="fit: prefix trees")
+            new_id = parts.number_candidates(built, str(tree_dir), len(P))
+            save_npy(tree_dir / "new_id.npy", new_id)
+            part_list = ctx.engine.map(parts.localize_part, built, str(tree_dir), ctx.engine.scatter(new_id),
+                                       desc="fit: numbering")
+            RunStore.unit_commit(work, "trees", ["trees/new_id.npy"] + [f"trees/{f}" for r in part_list
+                                                                       for f in r["files"]], {"parts": part_list})
+        new_id = load_npy(tree_dir / "new_id.npy")
+    inv = np.empty_like(new_id)
+    inv[new_id] = np.arange(len(new_id))
+    P_stage = P[inv]  # the EM runs in the trees' numbering: position new_id[k] holds candidate k
+    step = DistributedStep(ctx, tree_dir, part_list, P_stage)
 
     with ctx.substep("start"):
         acc, _ = step.partial(np.ones(len(P)))
-        mu0 = acc / P  # each edge's weight shared equally among its candidates
+        mu0 = acc / P_stage  # each edge's weight shared equally among its candidates
     with ctx.substep("em"):
         full = _fit_phase(ctx, step, mu0, p, "full", work)
     mu_full = full.mu
     with ctx.substep("prune"):
-        mu = np.where(mu_full * P < p["prune"], 0.0, mu_full)
-        restore = parts.restore_support(ctx.engine, part_list, str(cls_dir), mu, mu_full)
+        mu = np.where(mu_full * P_stage < p["prune"], 0.0, mu_full)
+        restore = parts.restore_support(ctx.engine, part_list, str(tree_dir), mu, mu_full)
         mu[restore] = mu_full[restore]
         pruned = int(((mu == 0) & (mu_full > 0)).sum())
     with ctx.substep("refit"):
         refit = _fit_phase(ctx, step, mu, p, "kept", work) if pruned else full
-    mu = refit.mu
+    mu = refit.mu[new_id]  # back to the candidates' own numbering
+    mu_full = mu_full[new_id]
     y = load_npy(enum_dir / "weight.npy", mmap=True)
     const = float(loglik_constant(np.asarray(y)))
     kept = int((mu > 0).sum())
@@ -164,8 +179,9 @@ def run(ctx: StageContext) -> dict:
         "weight_total": float(np.sum(y)),
         "fitted_total": float(np.sum(mu * P)),
         "parts": len(ranges),
-        "edge_classes": int(sum(r["classes"] for r in part_list)),
-        "class_incidences": int(sum(r["class_incidences"] for r in part_list)),
+        "tree_nodes": int(sum(r["nodes"] for r in part_list)),
+        "tree_ends": int(sum(r["ends"] for r in part_list)),
+        "incidences": int(sum(r["incidences"] for r in part_list)),
         "accelerate": p["accelerate"],
     }
     save_npy(work / "mu.npy", mu)
@@ -178,13 +194,13 @@ def run(ctx: StageContext) -> dict:
     parts.clear_cache()
     if not ctx.engine.in_process:
         ctx.engine.client.run(parts.clear_cache)
-    shutil.rmtree(cls_dir, ignore_errors=True)
+    shutil.rmtree(tree_dir, ignore_errors=True)
     return {k: report[k] for k in ("candidates", "groups_kept", "iterations", "converged", "loglik", "parts")}
 
 
-def _classes_unit(item, enum_dir, cls_dir):
+def _tree_unit(item, enum_dir, tree_dir, rank, by_rank):
     index, rng = item
-    return parts.classes_part(index, rng, enum_dir, cls_dir)
+    return parts.tree_part(index, rng, enum_dir, tree_dir, rank, by_rank)
 
 
 def read_report(stage_dir) -> dict:
