@@ -45,6 +45,7 @@ import os
 import re
 import shutil
 import time
+import threading
 import tomllib
 from dataclasses import dataclass
 from pathlib import Path
@@ -61,6 +62,10 @@ from cliquewise.store import (RunStore, StoreError, canonical_json, digest, faul
                               write_json_atomic)
 
 ROW_FILE = "covariates.json"
+# Set when a batch in this process is interrupted: networks still queued on the
+# in-process thread pool then return at once instead of starting (a network
+# already running finishes its current work; its checkpoints make that safe).
+_CANCEL = threading.Event()
 
 
 @dataclass
@@ -325,6 +330,9 @@ def run_network(item: dict, opts: dict) -> dict:
 
     t0 = time.perf_counter()
     out = {"slug": item["slug"], "state": "failed", "error": "", "stages_run": [], "row_reused": False, "row": None}
+    if _CANCEL.is_set():
+        out["error"] = "interrupted before it started"
+        return out
     try:
         s = Settings.from_dict(opts["settings"])
         s.run_dir = item["run_dir"]
@@ -406,7 +414,12 @@ def run_batch(settings: Settings, batch: BatchSettings, engine: Engine | None = 
                 "seed": batch.seed}
         items = [{"slug": s, "edges": e, "run_dir": str(root / r)} for s, e, r in
                  zip(*(table.column(c).to_pylist() for c in ("slug", "edges", "run_dir")))]
-        results = engine.map(run_network, items, opts, desc="networks")
+        _CANCEL.clear()
+        try:
+            results = engine.map(run_network, items, opts, desc="networks")
+        except BaseException:  # Ctrl-C or a lost cluster: queued networks must not start
+            _CANCEL.set()
+            raise
     finally:
         if own:
             engine.close()

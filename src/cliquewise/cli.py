@@ -247,7 +247,12 @@ def cmd_batch(args) -> int:
 
     settings, batch = _batch_settings_from_args(args)
     print(f"batch directory: {batch.dir}", file=sys.stderr)
-    out = run_batch(settings, batch, progress=not args.quiet)
+    try:
+        out = run_batch(settings, batch, progress=not args.quiet)
+    except KeyboardInterrupt:
+        print(f"cliquewise: interrupted; 'cliquewise batch --batch-dir {batch.dir}' continues where it stopped",
+              file=sys.stderr)
+        return 130
     for st in out["networks"]:
         if st["state"] != "done":
             note = f"failed: {st['error']}"
