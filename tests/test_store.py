@@ -164,3 +164,322 @@ def test_kill9_during_ingest_then_resume_is_identical(tmp_path, point):
         a = pd.read_parquet(tmp_path / "crash" / "results" / name)
         b = pd.read_parquet(tmp_path / "ref" / "results" / name)
         pd.testing.assert_frame_equal(a, b)
+
+
+# --------------------------------------------------------------------------------------
+# corrupt run stores, end to end: every case is detected, the stage recomputed (or the
+# user told what to do), and the results equal those of the untouched run
+
+import shutil
+
+from _support import run_cli as _run_cli
+
+STAGES_ALL = ["ingest", "split", "enumerate", "fit", "results"]
+
+
+@pytest.fixture(scope="module")
+def finished(tmp_path_factory):
+    """One finished run on the Les Miserables export (networkx ships the graph)."""
+    root = tmp_path_factory.mktemp("finished")
+    lesmis_export(seed=3).to_parquet(root / "export.parquet")
+    rc, _, err = _run_cli("run", "--edges", root / "export.parquet", "--run-dir", root / "run")
+    assert rc == 0, err
+    return root / "run"
+
+
+def _copy(finished, tmp_path) -> Path:
+    dst = tmp_path / "run"
+    shutil.copytree(finished, dst)
+    return dst
+
+
+def _results(run_dir) -> dict:
+    out = {t: pd.read_parquet(Path(run_dir) / "results" / f"{t}.parquet") for t in ("nodes", "cliques", "members")}
+    out["mu"] = np.load(Path(run_dir) / "fit" / "mu.npy", allow_pickle=False)
+    return out
+
+
+def _assert_same(a, b) -> None:
+    ra, rb = _results(a), _results(b)
+    for t in ("nodes", "cliques", "members"):
+        pd.testing.assert_frame_equal(ra[t], rb[t], check_exact=True)
+    np.testing.assert_array_equal(ra["mu"], rb["mu"])
+
+
+def _resume(run_dir) -> dict:
+    """Resume through the CLI; return {stage: rerun?} from its per-stage lines."""
+    rc, _, err = _run_cli("resume", run_dir)
+    assert rc == 0, err
+    lines = {ln.split()[0]: "up to date" not in ln for ln in err.splitlines() if ln.startswith("  ")}
+    assert set(lines) == set(STAGES_ALL), err
+    return lines
+
+
+def _truncate(p: Path):
+    data = p.read_bytes()
+    p.write_bytes(data[: len(data) // 2])
+
+
+def _flip(p: Path):
+    data = bytearray(p.read_bytes())
+    data[len(data) // 2] ^= 0x01  # same size, one bit changed
+    p.write_bytes(bytes(data))
+
+
+CORRUPTIONS = [
+    ("ingest", "edges/part-00000.parquet", _truncate, "truncated"),
+    ("split", "nodes.parquet", _flip, "checksum"),
+    ("enumerate", "cand_nodes.npy", _truncate, "truncated"),
+    ("enumerate", "inc_cand.npy", _flip, "checksum"),
+    ("fit", "mu.npy", _flip, "checksum"),
+    ("results", "members.parquet", Path.unlink, "missing"),
+    ("results", "summary.json", _truncate, "truncated"),
+]
+
+
+@pytest.mark.parametrize("stage, rel, damage, word", CORRUPTIONS, ids=[f"{s}/{r}" for s, r, _, _ in CORRUPTIONS])
+def test_damaged_output_is_detected_and_recomputed(finished, tmp_path, stage, rel, damage, word):
+    run = _copy(finished, tmp_path)
+    damage(run / stage / rel)
+    ok, why = RunStore(run).verify(stage)
+    assert not ok and word in why
+    rows = {r["stage"]: r["state"] for r in json.loads(_run_cli("status", run, "--json")[1])}
+    if word != "checksum":  # status checks sizes; resume also checksums
+        assert rows[stage] != "complete"
+    rerun = _resume(run)
+    assert rerun[stage]
+    upstream = STAGES_ALL[:STAGES_ALL.index(stage)]
+    assert not any(rerun[s] for s in upstream), "stages above the damage are reused"
+    _assert_same(run, finished)
+
+
+def _edit_params(man):
+    man["params"]["max_iter"] = 5
+
+
+def _edit_identity(man):
+    man["identity"] = "0" * 32
+
+
+def _edit_checksum(man):
+    first = sorted(man["outputs"])[0]
+    man["outputs"][first]["checksum"] = "0" * 32
+
+
+def _edit_version(man):
+    man["version"] = 999
+
+
+MANIFEST_EDITS = [("fit", _edit_params, "edited"), ("enumerate", _edit_identity, "edited"),
+                  ("split", _edit_checksum, "edited"), ("ingest", _edit_version, "format version")]
+
+
+@pytest.mark.parametrize("stage, edit, word", MANIFEST_EDITS, ids=[e.__name__ for _, e, _ in MANIFEST_EDITS])
+def test_edited_manifest_is_detected_and_recomputed(finished, tmp_path, stage, edit, word):
+    run = _copy(finished, tmp_path)
+    path = run / stage / "manifest.json"
+    man = json.loads(path.read_text())
+    edit(man)
+    path.write_text(json.dumps(man))
+    ok, why = RunStore(run).verify(stage)
+    assert not ok and word in why
+    assert _resume(run)[stage]
+    _assert_same(run, finished)
+
+
+@pytest.mark.parametrize("garbage", [b"", b"{not json", b"[]", b'{"stage": "split"'])
+def test_unreadable_manifest_means_half_written(finished, tmp_path, garbage):
+    run = _copy(finished, tmp_path)
+    (run / "split" / "manifest.json").write_bytes(garbage)
+    ok, why = RunStore(run).verify("split")
+    assert not ok and "half-written" in why
+    # and everything below no longer counts as complete either
+    for below in ("enumerate", "fit", "results"):
+        assert not RunStore(run).verify(below)[0]
+    with pytest.raises(StoreError, match="no complete results"):
+        import cliquewise
+        cliquewise.open_run(run)
+    rerun = _resume(run)
+    assert rerun["split"] and not rerun["ingest"]
+    _assert_same(run, finished)
+
+
+def test_stray_work_folders_are_ignored_or_cleaned(finished, tmp_path):
+    # a half-written attempt with another key, and a unit marker whose file is damaged
+    run = _copy(finished, tmp_path)
+    junk = run / ".work" / "enumerate-0123456789abcdef"
+    (junk / "units").mkdir(parents=True)
+    (junk / "units" / "graph.json").write_text('{"files": {"graph/x.npy": {"bytes": 3, "checksum": "00"}}}')
+    (run / "enumerate" / "manifest.json").unlink()
+    rerun = _resume(run)
+    assert rerun["enumerate"] and not junk.exists()
+    _assert_same(run, finished)
+
+
+def test_damaged_unit_checkpoint_is_redone(tmp_path):
+    # a run killed after an enumeration unit, whose checkpointed file is then truncated
+    lesmis_export(seed=3).to_parquet(tmp_path / "export.parquet")
+    (tmp_path / "job.toml").write_text('[input]\nedges = "export.parquet"\n[candidates]\nedges_per_unit = 60\n')
+    killed = _cli(["run", tmp_path / "job.toml", "--run-dir", tmp_path / "killed"],
+                  {"CLIQUEWISE_FAULT": "unit:cl-e000000000120"})
+    assert killed.returncode == -9, killed.stderr
+    files = list((tmp_path / "killed" / ".work").glob("enumerate-*/cl/*e000000000060*.npy"))
+    assert files, "the first units' files are on disk"
+    for f in files:
+        _truncate(f)
+    assert _resume(tmp_path / "killed")["enumerate"]
+    rc, _, err = _run_cli("run", tmp_path / "job.toml", "--run-dir", tmp_path / "straight")
+    assert rc == 0, err
+    _assert_same(tmp_path / "killed", tmp_path / "straight")
+
+
+def test_changed_levels_rerun_enumerate_and_below_only(finished, tmp_path):
+    run = _copy(finished, tmp_path)
+    export = json.loads((run / "run.json").read_text())["settings"]["input"]["edges"]
+    rc, _, err = _run_cli("run", "--edges", export, "--run-dir", run, "--levels", 3)
+    assert rc == 0, err
+    assert "ingest     up to date" in err and "split      up to date" in err
+    assert "enumerate  up to date" not in err and "fit        up to date" not in err
+    rc, _, err = _run_cli("run", "--edges", export, "--run-dir", tmp_path / "fresh", "--levels", 3)
+    assert rc == 0, err
+    _assert_same(run, tmp_path / "fresh")
+    assert _resume(run) == dict.fromkeys(STAGES_ALL, False)  # resume keeps the new parameters
+
+
+def test_changed_export_is_detected_on_resume(tmp_path):
+    df = lesmis_export(seed=3)
+    df.to_parquet(tmp_path / "export.parquet")
+    rc, _, err = _run_cli("run", "--edges", tmp_path / "export.parquet", "--run-dir", tmp_path / "run")
+    assert rc == 0, err
+    df.iloc[: len(df) // 2].to_parquet(tmp_path / "export.parquet")  # the export changes in place
+    assert all(_resume(tmp_path / "run").values())
+    rc, _, err = _run_cli("run", "--edges", tmp_path / "export.parquet", "--run-dir", tmp_path / "fresh")
+    assert rc == 0, err
+    _assert_same(tmp_path / "run", tmp_path / "fresh")
+
+
+def test_failed_rerun_leaves_no_stale_results(finished, tmp_path):
+    # rerun with an export that fails: the old results must not look current
+    run = _copy(finished, tmp_path)
+    pd.DataFrame({"source": ["a"], "target": ["a"], "weight": [1]}).to_parquet(tmp_path / "loops.parquet")
+    rc, _, err = _run_cli("run", "--edges", tmp_path / "loops.parquet", "--run-dir", run)
+    assert rc == 2 and "self-loops" in err
+    states = {r["stage"]: r["state"] for r in json.loads(_run_cli("status", run, "--json")[1])}
+    assert all(s != "complete" for s in states.values()), states
+    import cliquewise
+
+    with pytest.raises(StoreError, match="no complete results"):
+        cliquewise.open_run(run)
+
+
+@pytest.mark.parametrize("content, word", [("{broken", "corrupt"), ('{"settings": {"fit": {"tol": "x"}}}', "invalid"),
+                                           ('{"settings": {"input": {"edgez": "x"}}}', "invalid"), (None, "no run.json")])
+def test_damaged_run_json_tells_what_to_do(finished, tmp_path, content, word):
+    run = _copy(finished, tmp_path)
+    if content is None:
+        (run / "run.json").unlink()
+    else:
+        (run / "run.json").write_text(content)
+    rc, _, err = _run_cli("resume", run)
+    assert rc == 2 and word in err and "cliquewise run" in err
+    assert len(err.strip().splitlines()) == 1
+
+
+def test_a_moved_run_directory_resumes_where_it_is(finished, tmp_path):
+    run = _copy(finished, tmp_path)
+    (run / "results" / "manifest.json").unlink()
+    rerun = _resume(run)
+    assert rerun["results"] and (run / "results" / "manifest.json").exists()
+    assert (finished / "results" / "manifest.json").exists()  # the original is untouched
+    _assert_same(run, finished)
+
+
+# --------------------------------------------------------------------------------------
+# full and read-only disks: a clear line, earlier stages intact, resume finishes
+
+
+@pytest.mark.parametrize("code, word", [(28, "no space left"), (30, "read-only"), (122, "quota")])
+def test_disk_errors_in_a_later_stage(finished, tmp_path, monkeypatch, code, word):
+    from cliquewise.stages import fit
+
+    run = _copy(finished, tmp_path)
+    for st in ("fit", "results"):
+        (run / st / "manifest.json").unlink()
+    real = fit.save_npy
+
+    def failing(path, arr):
+        raise OSError(code, os.strerror(code), str(path))
+
+    monkeypatch.setattr(fit, "save_npy", failing)
+    rc, _, err = _run_cli("resume", run)
+    lines = [ln for ln in err.splitlines() if ln.startswith("cliquewise:")]
+    assert rc == 2 and len(lines) == 1, err
+    assert word in lines[0] and "stage 'fit'" in lines[0] and ".npy" in lines[0] and "cliquewise resume" in lines[0]
+    store = RunStore(run)
+    assert all(store.verify(s)[0] for s in ("ingest", "split", "enumerate"))
+    assert not store.verify("fit")[0] and not store.verify("results")[0]
+    monkeypatch.setattr(fit, "save_npy", real)
+    rerun = _resume(run)
+    assert rerun["fit"] and not rerun["enumerate"]
+    _assert_same(run, finished)
+
+
+def _can_unshare_mounts() -> bool:
+    if not shutil.which("unshare") or os.geteuid() != 0:
+        return False
+    probe = subprocess.run(["unshare", "-m", "sh", "-c", "mount -t tmpfs -o size=64k tmpfs /mnt"],
+                           capture_output=True)
+    return probe.returncode == 0
+
+
+@pytest.mark.skipif(not _can_unshare_mounts(), reason="needs root and mount namespaces for a real tmpfs")
+def test_a_really_full_disk(tmp_path):
+    # a real tmpfs in a private mount namespace: a finished run loses its last three
+    # stages, the disk is filled up to 8 KB, enumerate fails with ENOSPC; then space is
+    # freed and resume completes
+    lesmis_export(seed=3).to_parquet(tmp_path / "export.parquet")
+    py = sys.executable
+    script = f"""
+set -u
+D={tmp_path}/disk
+mkdir -p $D && mount -t tmpfs -o size=4m tmpfs $D
+CW="{py} -m cliquewise.cli --quiet"
+$CW run --edges {tmp_path}/export.parquet --run-dir $D/run > /dev/null 2>&1
+rm -rf $D/run/enumerate $D/run/fit $D/run/results
+dd if=/dev/zero of=$D/reserve bs=4k count=2 > /dev/null 2>&1
+dd if=/dev/zero of=$D/filler bs=4k > /dev/null 2>&1
+rm $D/reserve
+$CW resume $D/run 2> {tmp_path}/full.err; echo $? > {tmp_path}/full.rc
+$CW status $D/run --json > {tmp_path}/full.status
+rm $D/filler
+$CW resume $D/run 2> {tmp_path}/resume.err; echo $? > {tmp_path}/resume.rc
+cp -a $D/run {tmp_path}/kept
+"""
+    proc = subprocess.run(["unshare", "-m", "sh", "-c", script], capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    err = (tmp_path / "full.err").read_text()
+    assert (tmp_path / "full.rc").read_text().strip() == "2", err
+    line = [ln for ln in err.splitlines() if ln.startswith("cliquewise:")]
+    assert len(line) == 1 and "no space left" in line[0] and "cliquewise resume" in line[0], err
+    assert "stage 'enumerate'" in line[0]  # 8 KB were left: run.json fits, the candidates do not
+    states = {r["stage"]: r["state"] for r in json.loads((tmp_path / "full.status").read_text())}
+    assert states["ingest"] == states["split"] == "complete" and states["enumerate"] != "complete"
+    assert (tmp_path / "resume.rc").read_text().strip() == "0", (tmp_path / "resume.err").read_text()
+    rc, _, e = _run_cli("run", "--edges", tmp_path / "export.parquet", "--run-dir", tmp_path / "straight")
+    assert rc == 0, e
+    _assert_same(tmp_path / "kept", tmp_path / "straight")
+
+
+@pytest.mark.skipif(not _can_unshare_mounts(), reason="needs root and mount namespaces for a read-only bind mount")
+def test_a_really_read_only_run_directory(finished, tmp_path):
+    run = _copy(finished, tmp_path)
+    (run / "results" / "manifest.json").unlink()
+    before = {p: p.read_bytes() for p in run.rglob("*") if p.is_file()}
+    script = f"""
+mount --bind {run} {run} && mount -o remount,bind,ro {run}
+{sys.executable} -m cliquewise.cli --quiet resume {run}
+"""
+    proc = subprocess.run(["unshare", "-m", "sh", "-c", script], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 2, proc.stderr
+    assert proc.stderr.count("cliquewise: error:") == 1 and "not writable" in proc.stderr, proc.stderr
+    assert {p: p.read_bytes() for p in run.rglob("*") if p.is_file()} == before

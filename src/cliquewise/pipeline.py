@@ -10,11 +10,13 @@ settings so ``resume`` needs nothing but the directory.
 
 from __future__ import annotations
 
+import errno
 import importlib
 import logging
+from contextlib import contextmanager
 from pathlib import Path
 
-from cliquewise.config import Settings
+from cliquewise.config import ConfigError, Settings
 from cliquewise.engine import Engine, EngineSettings
 from cliquewise.stage import run_stage
 from cliquewise.store import RunStore, StoreError, read_json, write_json_atomic
@@ -50,7 +52,15 @@ def load_settings(run_dir: str | Path) -> Settings:
         raise StoreError(f"{run_dir}: not a run directory (no run.json); start one with 'cliquewise run'") from None
     except ValueError:
         raise StoreError(f"{path} is corrupt; start the run again with 'cliquewise run'") from None
-    return Settings.from_dict(data["settings"])
+    if not isinstance(data, dict) or not isinstance(data.get("settings"), dict):
+        raise StoreError(f"{path} is corrupt; start the run again with 'cliquewise run'")
+    try:
+        settings = Settings.from_dict(data["settings"])
+    except ConfigError as exc:
+        raise StoreError(f"{path} holds invalid settings ({exc}); fix it or start again with 'cliquewise run'") from None
+    # the folder may have been moved or copied since: it is the run directory now
+    settings.run_dir = str(Path(run_dir).resolve())
+    return settings
 
 
 def run_pipeline(settings: Settings, engine: Engine | None = None, until: str | None = None,
@@ -59,7 +69,8 @@ def run_pipeline(settings: Settings, engine: Engine | None = None, until: str | 
     if not settings.run_dir:
         raise StoreError("no run directory given (--run-dir)")
     store = RunStore(settings.run_dir)
-    save_settings(store, settings)
+    with _disk_errors(store, "saving the settings"):
+        save_settings(store, settings)
     own = engine is None
     engine = engine or Engine(engine_settings(settings, progress))
     results = {}
@@ -72,7 +83,8 @@ def run_pipeline(settings: Settings, engine: Engine | None = None, until: str | 
                 body = (lambda m, inp: (lambda ctx: m.run(ctx, inp)))(mod, inputs)
             else:
                 body = mod.run
-            res = run_stage(store, engine, name, params, mod.UPSTREAM, body, inputs=inputs)
+            with _disk_errors(store, f"stage {name!r}"):
+                res = run_stage(store, engine, name, params, mod.UPSTREAM, body, inputs=inputs)
             results[name] = res
             if on_stage:
                 on_stage(res)
@@ -82,6 +94,28 @@ def run_pipeline(settings: Settings, engine: Engine | None = None, until: str | 
         if own:
             engine.close()
     return results
+
+
+_DISK_ERRNOS = {errno.ENOSPC: "no space left on the device", errno.EDQUOT: "disk quota exceeded",
+                errno.EROFS: "the file system is read-only", errno.EFBIG: "a file grew too large for the file system"}
+_DISK_TEXTS = {"No space left on device": errno.ENOSPC, "Disk quota exceeded": errno.EDQUOT,
+               "Read-only file system": errno.EROFS}
+
+
+@contextmanager
+def _disk_errors(store: RunStore, what: str):
+    """Turn a full, over-quota or read-only disk under the run directory into one clear line."""
+    try:
+        yield
+    except OSError as exc:
+        code = exc.errno if exc.errno in _DISK_ERRNOS else next(
+            (c for text, c in _DISK_TEXTS.items() if text in str(exc)), None)
+        if code is None:
+            raise
+        where = f" writing {exc.filename}" if getattr(exc, "filename", None) else ""
+        raise StoreError(
+            f"{what} failed{where}: {_DISK_ERRNOS[code]}; completed stages in {store.root} are kept: make room "
+            f"(or make it writable) and run 'cliquewise resume {store.root}'") from exc
 
 
 def stage_status(run_dir: str | Path) -> list[dict]:

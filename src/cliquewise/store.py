@@ -171,9 +171,11 @@ class RunStore:
                 self.root.mkdir(parents=True, exist_ok=True)
                 (self.root / ".work").mkdir(exist_ok=True)
             except OSError as exc:
-                raise StoreError(f"cannot create run directory {self.root}: {exc.strerror}") from exc
+                raise StoreError(f"cannot create run directory {self.root}: {exc.strerror}; choose another "
+                                 f"--run-dir or make room for it") from exc
             if not os.access(self.root, os.W_OK):
-                raise StoreError(f"run directory {self.root} is not writable")
+                raise StoreError(f"run directory {self.root} is not writable; make it writable (its completed "
+                                 f"stages are kept) or choose another --run-dir")
         elif not self.root.is_dir():
             raise StoreError(f"no run directory at {self.root}")
 
@@ -218,7 +220,7 @@ class RunStore:
         if key is None:  # without a key, check the chain: upstream stages are still what this one read
             for up, ident in (man.get("upstream") or {}).items():
                 up_man = self.manifest(up)
-                if up_man is None or up_man.get("identity") != ident:
+                if up_man is None or up_man.get("identity") != ident or not self.verify(up, checksums=False)[0]:
                     return False, f"stage {up!r} changed or is incomplete since this stage ran (resume reruns both)"
         folder = self.stage_dir(stage)
         for rel, info in man.get("outputs", {}).items():
