@@ -226,3 +226,20 @@ def test_demo_batch_file_parses():
     s, b = load_batch_file(ROOT / "pipelines" / "batch-demo.toml")
     assert Path(b.dir).is_absolute() and Path(b.folders).is_absolute() and b.inside == "export"
     b.validate(s)
+
+
+def test_network_column_in_csv(tmp_path):
+    # CSV columns are read as text, so network values come back as text; counts by pandas
+    df = _export()
+    df = df[df.network != "les misérables"]
+    df.to_csv(tmp_path / "rows.csv", index=False)
+    s, b = _batch(tmp_path, parallel=2, threads_per_network=1)
+    s.input.edges = str(tmp_path / "rows.csv")
+    out = run_batch(s, b, progress=False)
+    cov = pd.read_parquet(out["covariates"]).set_index("network")
+    assert cov.index.tolist() == ["davis", "karate/club"]
+    ref = _pandas_counts(df)
+    pd.testing.assert_frame_equal(cov[["nodes", "edges", "weight_total"]], ref.sort_index(),
+                                  check_dtype=False, check_names=False)
+    split = json.loads((tmp_path / "batch" / "inputs" / "split.json").read_text())
+    assert split["rows"] == len(df) and split["networks"] == 2
