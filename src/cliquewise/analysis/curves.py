@@ -54,7 +54,7 @@ from cliquewise.analysis import spectral
 from cliquewise.analysis.rundata import FittedRun, load_run, pair_count
 from cliquewise.kernels.em import fit_local
 
-__all__ = ["DEFAULT_FRACTIONS", "compression_curve", "concentration", "error_at", "model_errors"]
+__all__ = ["DEFAULT_FRACTIONS", "compression_curve", "concentration", "error_at", "model_errors", "refit_subset"]
 
 DEFAULT_FRACTIONS = (0.01, 0.02, 0.05, 0.1, 0.15, 0.2, 0.25, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 1.0)
 
@@ -107,8 +107,29 @@ def _group_counts(n_kept: int, fractions) -> list[int]:
     return [int(min(n_kept, max(1, math.ceil(f * n_kept - 1e-9)))) if n_kept else 0 for f in fractions]
 
 
-def _refit(A, y, mu, P, sel, tol, max_iter) -> np.ndarray:
-    """EM for the groups ``sel`` on the edges they cover, from their current ``mu``."""
+def refit_subset(A, y, mu, P, sel, tol: float = 1e-8, max_iter: int = 2000) -> np.ndarray:
+    """Maximum-likelihood intensities of the groups ``sel`` alone, on the pairs they cover.
+
+    EM (SQUAREM-accelerated, :func:`cliquewise.kernels.em.fit_local`) from the
+    current ``mu[sel]``; every other group gets 0.
+
+    Parameters
+    ----------
+    A : scipy sparse, ``E x K``
+        Edge-candidate incidence.
+    y : float64 array, length ``E``
+    mu : float64 array, length ``K``
+        Start (only ``mu[sel]`` is used; it must be positive there).
+    P : float64 array, length ``K``
+    sel : int array
+        Candidate ids to keep.
+    tol, max_iter
+        As in :func:`cliquewise.kernels.em.fit_em`.
+
+    Returns
+    -------
+    float64 array, length ``K``
+    """
     sub = A[:, sel].tocsr()
     covered = np.diff(sub.indptr) > 0
     sub = sub[covered]
@@ -170,7 +191,7 @@ def compression_curve(run_dir, fractions=None, refit: bool = True, rule: str = "
         if refit and m == len(kept):
             row.update(frobenius_rel_refit=plain["frobenius_rel"], deviance_refit=plain["deviance"])
         elif refit and m:
-            again = model_errors(A, run.y, _refit(A, run.y, mu, P, kept[:m], tol, max_iter), P, run.n)
+            again = model_errors(A, run.y, refit_subset(A, run.y, mu, P, kept[:m], tol, max_iter), P, run.n)
             row.update(frobenius_rel_refit=again["frobenius_rel"], deviance_refit=again["deviance"])
         else:
             row.update(frobenius_rel_refit=float("nan"), deviance_refit=float("nan"))
@@ -207,7 +228,7 @@ def error_at(run_dir, fractions=(0.1, 0.25), refit: bool = False) -> dict:
         mu = np.zeros_like(run.mu)
         mu[kept[:m]] = run.mu[kept[:m]]
         if refit and 0 < m < len(kept):
-            mu = _refit(A, run.y, mu, P, kept[:m], float(fit.get("tol", 1e-8)), int(fit.get("max_iter", 2000)))
+            mu = refit_subset(A, run.y, mu, P, kept[:m], float(fit.get("tol", 1e-8)), int(fit.get("max_iter", 2000)))
         out[float(f)] = model_errors(A, run.y, mu, P, run.n)["frobenius_rel"]
     return out
 

@@ -159,7 +159,7 @@ def _profile_section(root: Path) -> str:
     ax.barh(top.stage[::-1], top["wall s"][::-1], color="#4c78a8")
     ax.set_xlabel("wall seconds")
     ax.set_title("time per stage")
-    return _png(fig) + _table(df.fillna(""), left=("stage", "step", "throughput"))
+    return _png(fig) + _table(df.astype(object).where(df.notna(), ""), left=("stage", "step", "throughput"))
 
 
 def _sizes_section(cl: pd.DataFrame) -> str:
