@@ -50,13 +50,14 @@ h1{font-size:1.7em;margin-bottom:.2em} h2{border-bottom:2px solid #d8dee4;paddin
 .meta{color:#59636e;font-size:.9em}
 .caution{background:#fff4e5;border-left:6px solid #d97706;padding:.8em 1em;margin:1.2em 0;font-size:1.02em}
 table{border-collapse:collapse;margin:.6em 0;font-size:.92em}
-th,td{border:1px solid #d8dee4;padding:.25em .6em;text-align:right;vertical-align:top}
-th{background:#f3f5f7} td.l,th.l{text-align:left}
+th,td{border:1px solid #d8dee4;padding:.25em .6em;text-align:right;vertical-align:top;white-space:nowrap}
+th{background:#f3f5f7} td.l,th.l{text-align:left;white-space:normal}
 .kv td:first-child{text-align:left;color:#3b444e}
 img{max-width:100%;border:1px solid #e5e8eb;margin:.4em 0}
 .note{color:#59636e;font-size:.9em}
 .ok{color:#1a7f37;font-weight:600} .bad{color:#cf222e;font-weight:600}
 nav a{margin-right:.9em}
+.m{display:inline-block;background:#eef2f6;border-radius:3px;padding:0 .3em;margin:0 .25em .2em 0}
 """
 
 
@@ -299,7 +300,8 @@ def _groups_section(root: Path, cl: pd.DataFrame, se: pd.DataFrame | None, err: 
         labels = [html.escape(str(x)) for x in listed.get(r.clique_id, [])]
         more = len(labels) - members_shown
         cells += [_fmt(r.expected_weight), _fmt(r.share), f"{r.level_min:g} to {r.level_max:g}",
-                  ", ".join(labels[:members_shown]) + (f", &hellip; and {more} more" if more > 0 else "")]
+                  "".join(f'<span class="m">{x}</span>' for x in labels[:members_shown])
+                  + (f" &hellip; and {more} more" if more > 0 else "")]
         body.append("<tr>" + "".join(f'<td class="{"l" if c == "members" else ""}">{v}</td>'
                                      for c, v in zip(columns, cells)) + "</tr>")
     head = "".join(f'<th class="{"l" if c == "members" else ""}">{html.escape(c)}</th>' for c in columns)
