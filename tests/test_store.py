@@ -118,7 +118,7 @@ def test_npy_never_pickles(tmp_path):
     with pytest.raises(TypeError):
         save_npy(tmp_path / "x.npy", np.array([{"a": 1}], dtype=object))
     np.save(tmp_path / "evil.npy", np.array([{"a": 1}], dtype=object), allow_pickle=True)
-    with pytest.raises(ValueError):
+    with pytest.raises(StoreError, match="pickle"):
         load_npy(tmp_path / "evil.npy")
 
 

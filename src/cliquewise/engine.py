@@ -107,7 +107,8 @@ class Engine:
             self._cluster = LocalCluster(
                 n_workers=1, threads_per_worker=s.threads or ncores, processes=False,
                 memory_limit=s.memory_limit or 0, dashboard_address=dashboard_address(s.dashboard),
-                silence_logs=_dask_log_level(),
+                # the in-process worker serves HTTP too; without a host it would listen everywhere
+                worker_dashboard_address="127.0.0.1:0", silence_logs=_dask_log_level(),
             )
             self.client = Client(self._cluster)
         # without a client: dask's threaded scheduler in this process (lowest latency)

@@ -41,6 +41,7 @@ import numpy as np
 
 MANIFEST = "manifest.json"
 FORMAT_VERSION = 1
+STAGE_FOLDERS = ("ingest", "split", "enumerate", "fit", "results", ".work")  # what a run directory may hold
 
 
 class StoreError(RuntimeError):
@@ -109,7 +110,14 @@ def save_npy(path: Path, arr: np.ndarray) -> None:
 
 
 def load_npy(path: Path, mmap: bool = False) -> np.ndarray:
-    return np.load(path, allow_pickle=False, mmap_mode="r" if mmap else None)
+    """Load an ``.npy`` file; one holding Python objects (pickle) is refused, never loaded."""
+    try:
+        return np.load(path, allow_pickle=False, mmap_mode="r" if mmap else None)
+    except ValueError as exc:
+        if "allow_pickle" in str(exc):
+            raise StoreError(f"{path} holds Python objects (pickle) and is not loaded; it was not written by "
+                             f"cliquewise: delete the run directory and start again") from None
+        raise
 
 
 def describe_outputs(folder: Path) -> dict[str, dict]:
@@ -167,6 +175,13 @@ class RunStore:
     def __init__(self, root: str | os.PathLike, create: bool = True):
         self.root = Path(root).resolve()
         if create:
+            # a stage commit replaces RUN/<stage>/: never do that in a folder that is not ours
+            if self.root.is_dir() and not (self.root / "run.json").exists():
+                clash = [n for n in STAGE_FOLDERS if (self.root / n).exists()]
+                if clash:
+                    raise StoreError(
+                        f"{self.root} holds {clash[0]!r} but is not a cliquewise run directory (no run.json); "
+                        f"choose a new or empty --run-dir")
             try:
                 self.root.mkdir(parents=True, exist_ok=True)
                 (self.root / ".work").mkdir(exist_ok=True)
