@@ -64,7 +64,6 @@ def run_cliquewise(export: Path, run_dir: Path, until=None, tol=1e-8) -> tuple[f
 def sweep_bench(run_dir: Path, repeat: int) -> dict:
     from cliquewise.engine import Engine, EngineSettings
     from cliquewise.kernels.em import em_partial
-    from cliquewise.kernels.prefixtree import candidate_rank
     from cliquewise.parts import fitting
     from cliquewise.store import load_npy
 
@@ -91,13 +90,8 @@ def sweep_bench(run_dir: Path, repeat: int) -> dict:
     with tempfile.TemporaryDirectory(dir=OUT) as tmp:
         eng = Engine(EngineSettings(progress=False))
         t = time.perf_counter()
-        ranges = fitting.plan_parts(inc_ptr, max(250_000, -(-n_inc // 8)))  # as the fit stage plans them
-        rank = candidate_rank(size * (size - 1) // 2)
-        by_rank = np.argsort(rank)
-        built = eng.map(lambda it: fitting.tree_part(it[0], it[1], str(d), tmp, rank, by_rank),
-                        list(enumerate(ranges)))
-        new_id = fitting.number_candidates(built, tmp, K)
-        parts = eng.map(fitting.localize_part, built, tmp, new_id)
+        per_part = max(250_000, -(-n_inc // 8))  # as the fit stage plans them
+        parts, new_id = fitting.prepare_trees(eng, str(d), tmp, np.diff(load_npy(d / "cand_ptr.npy")), per_part)
         prep_seconds = time.perf_counter() - t
         n_nodes = sum(p["nodes"] for p in parts)
         inv = np.empty_like(new_id)

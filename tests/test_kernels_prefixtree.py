@@ -13,7 +13,7 @@ from hypothesis import given, settings, strategies as st
 
 from cliquewise.kernels.em import em_step_reference
 from cliquewise.kernels.prefixtree import (
-    build_tree, build_tree_reference, candidate_rank, check_tree, first_seen_order, tree_loglik,
+    build_tree, build_tree_reference, candidate_rank, check_tree, first_seen_order, row_tops, tree_loglik,
     tree_sweep, tree_sweep_reference, tree_unsupported)
 
 
@@ -30,22 +30,44 @@ def incidences(draw, max_edges=40, max_cand=8):
     return ptr, cand, y, pairs
 
 
-def _build(ptr, cand, y, pairs):
+def _build(ptr, cand, y, pairs, edges=None):
     rank = candidate_rank(pairs)
-    return build_tree(ptr, cand, y, rank, np.argsort(rank))
+    edges = np.arange(len(y)) if edges is None else edges
+    return build_tree(ptr, cand, y, edges, rank, np.argsort(rank))
 
 
 @settings(max_examples=300, deadline=None)
-@given(incidences(), st.integers(0, 5))
-def test_tree_matches_sorted_tuple_twin(inc, offset):
+@given(incidences(), st.data())
+def test_tree_matches_sorted_tuple_twin(inc, data):
     ptr, cand, y, pairs = inc
-    got = build_tree(ptr + offset, cand, y, candidate_rank(pairs), np.argsort(candidate_rank(pairs)))
-    want = build_tree_reference(ptr + offset, cand, y, candidate_rank(pairs))
+    edges = np.array(sorted(data.draw(st.sets(st.integers(0, max(0, len(y) - 1)), max_size=len(y)))), np.int64)
+    edges = edges[edges < len(y)]
+    got = _build(ptr, cand, y, pairs, edges)
+    want = build_tree_reference(ptr, cand, y, edges, candidate_rank(pairs))
     for g, w in zip(got, want):
         np.testing.assert_array_equal(g, w)
     check_tree(got[0], got[1], got[2], got[3], len(pairs))
-    # every edge with y > 0 ends somewhere; the weight is conserved
-    assert math.isclose(got[3].sum(), y.sum())
+    # every chosen edge with y > 0 ends somewhere; the weight is conserved
+    assert math.isclose(got[3].sum(), y[edges].sum())
+
+
+@settings(max_examples=200, deadline=None)
+@given(incidences(max_edges=60, max_cand=12))
+def test_trees_of_edges_grouped_by_top_make_the_whole_tree(inc):
+    # grouping edges by their first candidate splits the tree into independent
+    # subtrees: the trees of the groups, concatenated in top order, are the tree
+    # of all edges (reference: the plain-Python twin on all edges)
+    ptr, cand, y, pairs = inc
+    rank = candidate_rank(pairs)
+    top = row_tops(ptr, cand, rank)
+    whole = build_tree_reference(ptr, cand, y, np.arange(len(y)), rank)
+    pieces = [_build(ptr, cand, y, pairs, np.flatnonzero(top == t)) for t in np.unique(top)]
+    if not pieces:
+        assert len(whole[0]) == 0
+        return
+    np.testing.assert_array_equal(np.concatenate([p[0] for p in pieces]), whole[0])
+    np.testing.assert_array_equal(np.concatenate([p[1] for p in pieces]), whole[1])
+    np.testing.assert_array_equal(np.concatenate([p[3] for p in pieces]), whole[3])
 
 
 @settings(max_examples=300, deadline=None)

@@ -6,9 +6,12 @@ ids of the candidates holding edge ``e``, ascending. A candidate of size ``s``
 contributes ``s (s - 1) / 2`` entries, one per pair of its members, and every such
 pair must be an edge.
 
-One pass over the candidates looks every pair up once and writes its edge id into
-a pair buffer, in candidate order, while counting the pairs of each edge; a
-counting sort by edge then scatters the candidate ids into their rows. The scatter
+One pass over the candidates (:func:`pair_edges`) looks every pair up once and
+writes its edge id into a pair buffer, in candidate order; a counting sort by edge
+(:func:`count_rows`, :func:`starts_from_counts`, :func:`scatter_rows`) then
+scatters the candidate ids into their rows. The enumerate stage runs the lookups
+inside its work units, right after the search that found the candidates (their
+rows are still in cache), and the counting sort once over all units. The scatter
 visits the pairs in candidate order, so each row comes out ascending without a
 sort. Lookups walk the sorted CSR row of a member from its previous hit (members
 are sorted too), by steps or by binary search when the row is long, and the rows
@@ -23,20 +26,19 @@ import numpy as np
 
 from cliquewise.kernels.graph import bit_length, prefetch_member_rows
 
-__all__ = ["incidence", "incidence_reference"]
+__all__ = ["candidate_pairs", "count_rows", "incidence", "incidence_reference", "pair_edges",
+           "scatter_rows", "starts_from_counts"]
 
 
 @numba.njit(nogil=True, cache=True)
-def _incidence_kernel(indptr, nbr, eid, ptr, nodes, n_edges, pair_e):
-    """Fill ``pair_e`` (one edge id per member pair) and counting-sort it by edge.
+def pair_edges(indptr, nbr, eid, ptr, nodes, pair_e):
+    """Edge id of every member pair of every candidate, in candidate order.
 
-    Returns ``(inc_ptr, inc_cand, bad)``; ``bad`` is the first candidate with a
-    pair that is not an edge (then the arrays are empty), else -1.
+    Candidate ``k``'s pairs ``(i, j)``, ``i < j`` in member order, fill
+    ``pair_e[t:t + s(s-1)/2]`` row by row. Returns the first candidate with a pair
+    that is not an edge (then ``pair_e`` is incomplete), else -1.
     """
     K = ptr.shape[0] - 1
-    # cnt[e + 2] counts edge e; after the prefix sum cnt[e + 1] is the start of row
-    # e, and the scatter advances it to the end of row e, i.e. the start of e + 1
-    cnt = np.zeros(n_edges + 2, np.int64)
     t = np.int64(0)
     for k in range(K):
         prefetch_member_rows(indptr, nbr, eid, ptr, nodes, k)
@@ -61,24 +63,44 @@ def _incidence_kernel(indptr, nbr, eid, ptr, nodes, n_edges, pair_e):
                     while q < qe and nbr[q] < b:
                         q += 1
                 if q == qe or nbr[q] != b:
-                    return np.zeros(1, np.int64), np.empty(0, np.int64), k
-                e = eid[q]
-                pair_e[t] = e
-                cnt[e + 2] += 1
+                    return k
+                pair_e[t] = eid[q]
                 t += 1
                 q += 1
+    return -1
+
+
+@numba.njit(nogil=True, cache=True)
+def count_rows(pair_e, cnt):
+    """Add each edge's number of pairs into ``cnt[e + 2]`` (see :func:`rows_from_pairs`)."""
+    for t in range(pair_e.shape[0]):
+        cnt[pair_e[t] + 2] += 1
+
+
+@numba.njit(nogil=True, cache=True)
+def starts_from_counts(cnt, n_edges):
+    """Prefix sum: afterwards ``cnt[e + 1]`` is the start of row ``e``."""
     for e in range(n_edges):
         cnt[e + 2] += cnt[e + 1]
-    inc_cand = np.empty(t, np.int64)
+
+
+@numba.njit(nogil=True, cache=True)
+def scatter_rows(ptr, pair_e, k0, cnt, inc_cand):
+    """Write candidate ids ``k0 + k`` into the rows of their pairs' edges.
+
+    ``ptr`` and ``pair_e`` are one block of candidates (numbered from ``k0``) as
+    :func:`pair_edges` gives them; blocks must be scattered in candidate order
+    so that every row comes out ascending. ``cnt[e + 1]`` advances from the start
+    of row ``e`` to its end.
+    """
     t = 0
-    for k in range(K):
+    for k in range(ptr.shape[0] - 1):
         s = ptr[k + 1] - ptr[k]
         for _ in range(s * (s - 1) // 2):
             e1 = pair_e[t] + 1
-            inc_cand[cnt[e1]] = k
+            inc_cand[cnt[e1]] = k0 + k
             cnt[e1] += 1
             t += 1
-    return cnt[: n_edges + 1], inc_cand, -1
 
 
 def incidence(indptr, nbr, eid, ptr, nodes, n_edges, *, _wide=False):
@@ -111,16 +133,35 @@ def incidence(indptr, nbr, eid, ptr, nodes, n_edges, *, _wide=False):
     ``_wide`` (for tests) forces the int64 pair buffer used from ``2**31`` edges.
     """
     ptr = np.asarray(ptr, np.int64)
+    pair_e = candidate_pairs(indptr, nbr, eid, ptr, nodes, n_edges, _wide=_wide)
+    cnt = np.zeros(int(n_edges) + 2, np.int64)
+    count_rows(pair_e, cnt)
+    starts_from_counts(cnt, np.int64(n_edges))
+    inc_cand = np.empty(len(pair_e), np.int64)
+    scatter_rows(ptr, pair_e, np.int64(0), cnt, inc_cand)
+    return cnt[: int(n_edges) + 1], inc_cand
+
+
+def candidate_pairs(indptr, nbr, eid, ptr, nodes, n_edges, *, _wide=False):
+    """Edge ids of all member pairs, candidate by candidate (:func:`pair_edges`).
+
+    int32 unless there are ``2**31`` edges or more (or ``_wide``, for tests).
+
+    Raises
+    ------
+    ValueError
+        If a candidate has a pair of members that is not an edge.
+    """
+    ptr = np.asarray(ptr, np.int64)
     sizes = np.diff(ptr)
     n_pairs = int(np.sum(sizes * (sizes - 1) // 2))
     wide = _wide or n_edges >= 2**31
     pair_e = np.empty(n_pairs, np.int64 if wide else np.int32)
-    inc_ptr, inc_cand, bad = _incidence_kernel(
-        np.asarray(indptr, np.int64), nbr, np.asarray(eid, np.int64), ptr,
-        np.asarray(nodes, np.int64), np.int64(n_edges), pair_e)
+    bad = pair_edges(np.asarray(indptr, np.int64), nbr, np.asarray(eid, np.int64), ptr,
+                     np.asarray(nodes, np.int64), pair_e)
     if bad >= 0:
         raise ValueError(f"candidate {bad} is not a clique of the graph, or not sorted")
-    return inc_ptr, inc_cand
+    return pair_e
 
 
 def incidence_reference(u, v, ptr, nodes):

@@ -31,7 +31,10 @@ Layout of a tree (one part of the edges):
 ``end``    node index of each end node, increasing (int64);
 ``ey``     summed weight of the edges ending there (float64).
 
-What lives here: :func:`build_tree` (from an edge -> candidate CSR),
+What lives here: :func:`candidate_rank` (the list order), :func:`row_tops` (each
+edge's first candidate in that order: edges grouped by it split the tree into
+independent subtrees, which is how the fit cuts it into parts),
+:func:`build_tree` (from an edge -> candidate CSR and a set of edges),
 :func:`first_seen_order` (candidate numbering by first use, for locality),
 :func:`tree_sweep` (one EM sweep), :func:`tree_loglik`, :func:`tree_unsupported`
 (ends left with no positive rate after pruning), :func:`check_tree`, and the plain
@@ -49,6 +52,7 @@ __all__ = [
     "build_tree",
     "build_tree_reference",
     "candidate_rank",
+    "row_tops",
     "check_tree",
     "first_seen_order",
     "tree_loglik",
@@ -110,50 +114,116 @@ def _common(ptr, rows, a, b):
 
 
 @numba.njit(nogil=True, cache=True)
-def _sort_rows(ptr, rows):
-    """Stable merge sort of row indices in lexicographic row order."""
-    n = ptr.shape[0] - 1
-    a = np.arange(n)
-    b = np.empty(n, np.int64)
+def _merge_sort_rows(ptr, rows, a, b, lo, hi):
+    """Stable merge sort of the row indices ``a[lo:hi]`` in lexicographic row order
+    (``b`` is scratch of the same length as ``a``; the result ends in ``a``)."""
+    n = hi - lo
     width = 1
+    src = a
+    dst = b
+    in_a = True
     while width < n:
-        for lo in range(0, n, 2 * width):
-            mid = min(lo + width, n)
-            hi = min(lo + 2 * width, n)
-            i, j, k = lo, mid, lo
-            while i < mid and j < hi:
-                if _compare(ptr, rows, a[j], a[i]) < 0:
-                    b[k] = a[j]
+        for s0 in range(lo, hi, 2 * width):
+            mid = min(s0 + width, hi)
+            end = min(s0 + 2 * width, hi)
+            i, j, k = s0, mid, s0
+            while i < mid and j < end:
+                if _compare(ptr, rows, src[j], src[i]) < 0:
+                    dst[k] = src[j]
                     j += 1
                 else:
-                    b[k] = a[i]
+                    dst[k] = src[i]
                     i += 1
                 k += 1
             while i < mid:
-                b[k] = a[i]
+                dst[k] = src[i]
                 i += 1
                 k += 1
-            while j < hi:
-                b[k] = a[j]
+            while j < end:
+                dst[k] = src[j]
                 j += 1
                 k += 1
-        a, b = b, a
+        src, dst = dst, src
+        in_a = not in_a
         width *= 2
+    if not in_a:
+        for i in range(lo, hi):
+            a[i] = b[i]
+
+
+@numba.njit(nogil=True, cache=True)
+def _sort_rows(ptr, rows):
+    """Row indices in lexicographic row order (stable).
+
+    Rows are first ordered by their first two entries packed into one integer
+    (one fast sort), then runs that tie on both are merge-sorted on whole rows.
+    """
+    n = ptr.shape[0] - 1
+    key = np.empty(n, np.int64)
+    packable = True
+    for i in range(n):
+        s = ptr[i]
+        length = ptr[i + 1] - s
+        if length == 0:
+            key[i] = -1
+            continue
+        r0 = rows[s]
+        r1 = rows[s + 1] + 1 if length > 1 else 0
+        if r0 >= 2**31 - 1 or r1 >= 2**31 - 1:
+            packable = False
+            break
+        key[i] = (r0 << 32) | r1
+    a = np.arange(n)
+    b = np.empty(n, np.int64)
+    if not packable:
+        _merge_sort_rows(ptr, rows, a, b, 0, n)
+        return a
+    a = np.argsort(key, kind="mergesort")
+    i = 0
+    while i < n:
+        j = i + 1
+        while j < n and key[a[j]] == key[a[i]]:
+            j += 1
+        if j - i > 1:
+            _merge_sort_rows(ptr, rows, a, b, i, j)
+        i = j
     return a
 
 
 @numba.njit(nogil=True, cache=True)
-def build_tree(inc_ptr, inc_cand, y, rank, by_rank):
-    """Prefix tree of the candidate lists of one part of the edges.
+def row_tops(inc_ptr, inc_cand, rank):
+    """First candidate of each edge's list in list order (its smallest rank); -1 if empty.
+
+    Edges with the same top share the root of their prefix tree, so grouping edges
+    by top splits the tree of all edges into independent subtrees.
+    """
+    n = inc_ptr.shape[0] - 1
+    out = np.empty(n, np.int64)
+    for i in range(n):
+        best = -1
+        for j in range(inc_ptr[i], inc_ptr[i + 1]):
+            r = rank[inc_cand[j]]
+            if best < 0 or r < best:
+                best = r
+        out[i] = best
+    return out
+
+
+@numba.njit(nogil=True, cache=True)
+def build_tree(inc_ptr, inc_cand, y, edges, rank, by_rank):
+    """Prefix tree of the candidate lists of a set of edges.
 
     Parameters
     ----------
     inc_ptr : int64 array, length ``E + 1``
-        Row pointers; ``inc_ptr[0]`` need not be 0 (a slice of a longer array).
-    inc_cand : int64 array
-        The part's incidences (global candidate ids).
+        Row pointers of the whole incidence (``inc_ptr[0] == 0``).
+    inc_cand : int array
+        The whole incidence (global candidate ids).
     y : float64 array, length ``E``
         Edge weights. Edges with ``y == 0`` are left out (they add nothing).
+    edges : int64 array
+        The edges to put in the tree, ascending (their order only breaks ties
+        between identical lists, for the order of summation).
     rank : int64 array, length ``K``
         List order of the candidates (:func:`candidate_rank`).
     by_rank : int64 array, length ``K``
@@ -167,21 +237,24 @@ def build_tree(inc_ptr, inc_cand, y, rank, by_rank):
     end : int64 array
         End nodes, increasing.
     ey : float64 array
-        Weight ending at each end node (summed over edges in edge order, after a
-        stable sort, so the result is deterministic).
+        Weight ending at each end node (summed over edges in ``edges`` order, after
+        a stable sort, so the result is deterministic).
     """
-    n = inc_ptr.shape[0] - 1
-    base = inc_ptr[0]
-    m = inc_ptr[n] - base
-    keyed = np.empty(m, np.int64)
+    n = edges.shape[0]
     ptr = np.empty(n + 1, np.int64)
-    for i in range(n + 1):
-        ptr[i] = inc_ptr[i] - base
+    ptr[0] = 0
     for i in range(n):
+        e = edges[i]
+        ptr[i + 1] = ptr[i] + inc_ptr[e + 1] - inc_ptr[e]
+    m = ptr[n]
+    keyed = np.empty(m, np.int64)
+    for i in range(n):
+        e = edges[i]
         s = ptr[i]
         t = ptr[i + 1]
+        src = inc_ptr[e] - s
         for j in range(s, t):
-            keyed[j] = rank[inc_cand[j]]
+            keyed[j] = rank[inc_cand[src + j]]
         # insertion sort: rows are short
         for j in range(s + 1, t):
             x = keyed[j]
@@ -199,25 +272,26 @@ def build_tree(inc_ptr, inc_cand, y, rank, by_rank):
     n_end = 0
     prev = -1
     for idx in range(n):
-        e = order[idx]
-        if y[e] == 0.0:
+        i = order[idx]
+        w = y[edges[i]]
+        if w == 0.0:
             continue
-        s = ptr[e]
-        length = ptr[e + 1] - s
+        s = ptr[i]
+        length = ptr[i + 1] - s
         if length == 0:
             continue
-        shared = _common(ptr, keyed, prev, e) if prev >= 0 else 0
+        shared = _common(ptr, keyed, prev, i) if prev >= 0 else 0
         if shared == length and prev >= 0 and ptr[prev + 1] - ptr[prev] == length:
-            ey[n_end - 1] += y[e]  # the same list: the same end node
+            ey[n_end - 1] += w  # the same list: the same end node
             continue
         for p in range(shared, length):
             cand[n_nodes] = by_rank[keyed[s + p]]
             depth[n_nodes] = p
             n_nodes += 1
         end[n_end] = n_nodes - 1
-        ey[n_end] = y[e]
+        ey[n_end] = w
         n_end += 1
-        prev = e
+        prev = i
     return cand[:n_nodes].copy(), depth[:n_nodes].copy(), end[:n_end].copy(), ey[:n_end].copy()
 
 
@@ -400,18 +474,17 @@ def tree_unsupported(cand, depth, end, mu_kept, mu_full):
 # --------------------------------------------------------------------------- twins
 
 
-def build_tree_reference(inc_ptr, inc_cand, y, rank):
+def build_tree_reference(inc_ptr, inc_cand, y, edges, rank):
     """Plain-Python twin of :func:`build_tree`: sort the keyed lists, share prefixes.
 
     Returns the same four arrays (``cand`` as global ids).
     """
-    base = int(inc_ptr[0])
     by_rank = {int(r): k for k, r in enumerate(rank)}
     rows = []
-    for e in range(len(inc_ptr) - 1):
+    for e in edges:
         if y[e] == 0:
             continue
-        key = tuple(sorted(int(rank[k]) for k in inc_cand[inc_ptr[e] - base: inc_ptr[e + 1] - base]))
+        key = tuple(sorted(int(rank[k]) for k in inc_cand[inc_ptr[e]: inc_ptr[e + 1]]))
         if key:
             rows.append((key, e))
     rows.sort()  # by list, then by edge index: the stable order of the kernel

@@ -8,8 +8,10 @@
 * :func:`enumerate_unit` lists the candidates first seen at the edges of one edge
   block (the high-to-low sweep, see ``kernels/cliques.py``), under the blow-up
   budget (clique count, work, seconds), and their ``level_min``.
-* :func:`build_incidence` turns the candidate lists into the edge -> candidate CSR
-  the fit reads.
+  Each unit also looks up the edge ids of its candidates' member pairs while
+  their rows are in cache.
+* :func:`collect_units` concatenates the units' candidates and turns their pairs
+  into the edge -> candidate CSR the fit reads (a counting sort by edge).
 """
 
 from __future__ import annotations
@@ -22,7 +24,7 @@ import pyarrow.parquet as pq
 
 from cliquewise.kernels.cliques import level_min, sweep_candidates
 from cliquewise.kernels.graph import csr_from_edges
-from cliquewise.kernels.incidence import incidence
+from cliquewise.kernels.incidence import candidate_pairs, count_rows, scatter_rows, starts_from_counts
 from cliquewise.store import load_npy, save_npy
 
 GRAPH_FILES = ("indptr", "nbr", "nlev", "eid", "u", "v", "lev", "weight")
@@ -120,14 +122,15 @@ def enumerate_unit(graph_dir: str, lo: int, hi: int, max_cliques: int, max_secon
     nodes = np.concatenate(nodes_l) if nodes_l else np.empty(0, np.int64)
     lmax = np.concatenate(lmax_l).astype(np.int32) if lmax_l else np.empty(0, np.int32)
     lmin = level_min(g["indptr"], g["nbr"], g["nlev"], ptr, nodes).astype(np.int32)
+    pairs = candidate_pairs(g["indptr"], g["nbr"], g["eid"], ptr, nodes, len(g["u"]))
     out.mkdir(parents=True, exist_ok=True)
     files = []
-    for name, arr in (("ptr", ptr), ("nodes", nodes), ("lmax", lmax), ("lmin", lmin)):
+    for name, arr in (("ptr", ptr), ("nodes", nodes), ("lmax", lmax), ("lmin", lmin), ("pairs", pairs)):
         rel = f"{tag}.{name}.npy"
         save_npy(out / rel, arr)
         files.append(rel)
     result["files"] = files
-    result["incidences"] = int(((np.diff(ptr) * (np.diff(ptr) - 1)) // 2).sum())
+    result["incidences"] = int(len(pairs))
     result["cpu"] = time.thread_time() - t_cpu
     return result
 
@@ -179,9 +182,11 @@ def direct_components(graph_dir: Path, comp: np.ndarray, comp_nodes: np.ndarray,
     members = order[chosen[comp[order]]]  # nodes of chosen components, grouped by component, ascending ids
     sizes = comp_nodes[direct]
     ptr = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
+    members = members.astype(np.int64)
+    pairs = candidate_pairs(g["indptr"], g["nbr"], g["eid"], ptr, members, len(u))
     out.mkdir(parents=True, exist_ok=True)
-    for name, arr in (("ptr", ptr), ("nodes", members.astype(np.int64)), ("lmax", lmax[direct].astype(np.int32)),
-                      ("lmin", np.zeros(len(direct), np.int32))):
+    for name, arr in (("ptr", ptr), ("nodes", members), ("lmax", lmax[direct].astype(np.int32)),
+                      ("lmin", np.zeros(len(direct), np.int32)), ("pairs", pairs)):
         save_npy(out / f"direct.{name}.npy", arr)
     return {"direct": int(len(direct)), "skipped_edges": int(skip.sum())}
 
@@ -244,42 +249,49 @@ def _stop_point(g: dict, s: int, e: int, cliques_left: int, work_left: int, stat
     return s, int(g["u"][s]), int(g["lev"][s])
 
 
-def concat_units(folder: Path, tags: list[str], out: Path) -> dict:
-    """Concatenate unit outputs in unit order into the candidate table files."""
-    ptrs, nodes_l, lmax_l, lmin_l = [np.zeros(1, np.int64)], [], [], []
-    offset = 0
-    for tag in tags:
-        ptr = load_npy(folder / f"{tag}.ptr.npy")
-        ptrs.append(ptr[1:] + offset)
-        offset += int(ptr[-1])
-        nodes_l.append(load_npy(folder / f"{tag}.nodes.npy"))
-        lmax_l.append(load_npy(folder / f"{tag}.lmax.npy"))
-        lmin_l.append(load_npy(folder / f"{tag}.lmin.npy"))
+UNIT_ARRAYS = ("ptr", "nodes", "lmax", "lmin", "pairs")
+
+
+def collect_units(folder: Path, tags: list[str], out: Path, n_edges: int) -> dict:
+    """Concatenate unit outputs in unit order into the candidate table files, and
+    build the edge -> candidate CSR from the units' pairs.
+
+    Writes ``cand_ptr``, ``cand_nodes``, ``level_max``, ``level_min``, ``inc_ptr``
+    and ``inc_cand`` (int32 while there are fewer than ``2**31`` candidates).
+    """
+    t_cpu = time.thread_time()
+    units = [{name: load_npy(folder / f"{tag}.{name}.npy") for name in UNIT_ARRAYS} for tag in tags]
+    ptrs, offset = [np.zeros(1, np.int64)], 0
+    for u in units:
+        ptrs.append(u["ptr"][1:] + offset)
+        offset += int(u["ptr"][-1])
     ptr = np.concatenate(ptrs)
-    nodes = np.concatenate(nodes_l) if nodes_l else np.empty(0, np.int64)
-    lmax = np.concatenate(lmax_l) if lmax_l else np.empty(0, np.int32)
-    lmin = np.concatenate(lmin_l) if lmin_l else np.empty(0, np.int32)
     out.mkdir(parents=True, exist_ok=True)
     save_npy(out / "cand_ptr.npy", ptr)
-    save_npy(out / "cand_nodes.npy", nodes)
-    save_npy(out / "level_max.npy", lmax)
-    save_npy(out / "level_min.npy", lmin)
-    sizes = np.diff(ptr)
-    return {"candidates": int(len(ptr) - 1), "member_rows": int(len(nodes)),
-            "largest_candidate": int(sizes.max()) if len(sizes) else 0}
-
-
-def build_incidence(graph_dir: Path, cand_dir: Path, out: Path) -> dict:
-    """Edge -> candidate CSR over the edge store's edge order; writes ``inc_ptr/inc_cand.npy``."""
-    t_cpu = time.thread_time()
-    g = load_graph(graph_dir)
-    ptr = load_npy(cand_dir / "cand_ptr.npy")
-    nodes = load_npy(cand_dir / "cand_nodes.npy")
-    inc_ptr, inc_cand = incidence(g["indptr"], g["nbr"], g["eid"], ptr, nodes, np.int64(len(g["u"])))
+    for name, dtype, file in (("nodes", np.int64, "cand_nodes"), ("lmax", np.int32, "level_max"),
+                              ("lmin", np.int32, "level_min")):
+        arr = np.concatenate([u[name] for u in units]) if units else np.empty(0, dtype)
+        save_npy(out / f"{file}.npy", arr)
+        del arr
+    n_cand = len(ptr) - 1
+    cnt = np.zeros(n_edges + 2, np.int64)
+    for u in units:
+        count_rows(u["pairs"], cnt)
+    starts_from_counts(cnt, np.int64(n_edges))
+    n_inc = int(cnt[n_edges + 1]) if n_edges else 0
+    inc_cand = np.empty(n_inc, np.int32 if n_cand < 2**31 else np.int64)
+    k0 = 0
+    for u in units:
+        scatter_rows(u["ptr"], u["pairs"], np.int64(k0), cnt, inc_cand)
+        k0 += len(u["ptr"]) - 1
+    inc_ptr = cnt[: n_edges + 1]
     save_npy(out / "inc_ptr.npy", inc_ptr)
     save_npy(out / "inc_cand.npy", inc_cand)
-    uncovered = int((np.diff(inc_ptr) == 0).sum())
-    return {"incidences": int(len(inc_cand)), "uncovered_edges": uncovered, "cpu": time.thread_time() - t_cpu}
+    sizes = np.diff(ptr)
+    return {"candidates": int(n_cand), "member_rows": int(ptr[-1]),
+            "largest_candidate": int(sizes.max()) if len(sizes) else 0,
+            "incidences": n_inc, "uncovered_edges": int((np.diff(inc_ptr) == 0).sum()),
+            "cpu": time.thread_time() - t_cpu}
 
 
 def plan_units(n_edges: int, edges_per_unit: int) -> list[tuple[int, int]]:

@@ -1,15 +1,19 @@
 """Per-part functions of the fit stage.
 
-A *part* is a contiguous range of edges ``[lo, hi)`` of the incidence (edges in the
-edge store's order). Once, before the EM, each part's edge -> candidate lists are
-put into a prefix tree (``kernels/prefixtree.py``): edges with the same list become
-one end node, and lists that start alike share their nodes, so an EM sweep does
-about half the work of the flat incidence. The candidates are then numbered in
-the order the trees use them (first use, parts in order), which keeps the ``mu``
-and ``acc`` entries one part touches close together; the stage works in that
-numbering and maps back at the end. Each EM step sweeps every part's tree and
-returns a dense accumulator over the part's id range plus the offset where it
-starts.
+Once, before the EM, the edges' candidate lists are put into a prefix tree
+(``kernels/prefixtree.py``): edges with the same list become one end node, and
+lists that start alike share their nodes, so an EM sweep does about half the work
+of the flat incidence. The tree of all edges splits into independent subtrees,
+one per *top* (an edge's first candidate in list order), so a *part* is a set of
+whole subtrees: :func:`plan_tree_parts` orders the edges by top and cuts that
+order at top boundaries into parts of about equal incidence counts. The parts'
+trees, in part order, are exactly the tree of all edges.
+
+The candidates are then numbered in the order the trees use them (first use,
+parts in order), which keeps the ``mu`` and ``acc`` entries one part touches
+close together; the stage works in that numbering and maps back at the end. Each
+EM step sweeps every part's tree and returns a dense accumulator over the part's
+id range plus the offset where it starts.
 """
 
 from __future__ import annotations
@@ -18,52 +22,64 @@ from pathlib import Path
 
 import numpy as np
 
-from cliquewise.kernels.prefixtree import build_tree, check_tree, first_seen_order, tree_sweep, tree_unsupported
+from cliquewise.kernels.prefixtree import (build_tree, candidate_rank, check_tree, first_seen_order, row_tops,
+                                            tree_sweep, tree_unsupported)
 from cliquewise.store import load_npy, save_npy
 
 TREE_ARRAYS = ("cand", "depth", "end", "ey")
 
 
-def plan_parts(inc_ptr: np.ndarray, per_part: int) -> list[tuple[int, int]]:
-    """Edge ranges holding about ``per_part`` incidences each."""
-    n_edges = len(inc_ptr) - 1
-    if n_edges <= 0:
-        return []
-    total = int(inc_ptr[-1])
-    n_parts = max(1, -(-total // max(1, per_part)))
-    cuts = np.searchsorted(inc_ptr, np.linspace(0, total, n_parts + 1)[1:-1], side="left")
-    bounds = np.unique(np.concatenate([[0], cuts, [n_edges]]))
-    return [(int(a), int(b)) for a, b in zip(bounds[:-1], bounds[1:])]
+def plan_tree_parts(enum_dir: str, out_dir: str, rank, per_part: int) -> list[dict]:
+    """Order the edges by top and cut the order into parts of whole subtrees.
 
-
-def _load_edges(enum_dir: str, lo: int, hi: int):
+    Writes ``{out_dir}/order.npy`` (edge ids by top, stable) and returns one record
+    per part with its slice ``[lo, hi)`` of that order. Cuts fall at the first top
+    boundary at or after each multiple of ``per_part`` incidences, so the parts
+    depend on the data only.
+    """
     d = Path(enum_dir)
-    inc_ptr = load_npy(d / "inc_ptr.npy", mmap=True)[lo:hi + 1]
-    a, b = int(inc_ptr[0]), int(inc_ptr[-1])
-    inc_cand = load_npy(d / "inc_cand.npy", mmap=True)[a:b]
-    y = load_npy(d / "weight.npy", mmap=True)[lo:hi]
-    return (np.ascontiguousarray(inc_ptr, np.int64), np.ascontiguousarray(inc_cand, np.int64),
-            np.ascontiguousarray(y, np.float64))
+    inc_ptr = load_npy(d / "inc_ptr.npy", mmap=True)
+    inc_cand = load_npy(d / "inc_cand.npy", mmap=True)
+    top = row_tops(inc_ptr, inc_cand, np.asarray(rank))
+    order = np.argsort(top, kind="stable")
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    save_npy(out / "order.npy", order)
+    n_edges = len(order)
+    if n_edges == 0:
+        return []
+    cum = np.cumsum(np.diff(np.asarray(inc_ptr))[order])
+    total = int(cum[-1])
+    n_parts = max(1, -(-total // max(1, per_part)))
+    st = top[order]
+    starts = np.flatnonzero(np.concatenate([[True], st[1:] != st[:-1]]))  # first edge of each top
+    want = np.searchsorted(cum, np.linspace(0, total, n_parts + 1)[1:-1], side="left") + 1
+    at = np.searchsorted(starts, want, side="left")  # the first top boundary at or after each wish
+    cuts = np.append(starts, n_edges)[at]
+    bounds = np.unique(np.concatenate([[0], cuts, [n_edges]]))
+    return [{"index": i, "lo": int(a), "hi": int(b)} for i, (a, b) in enumerate(zip(bounds[:-1], bounds[1:]))]
 
 
 def _files(out: Path, index: int, stem: str = "p") -> list[Path]:
     return [out / f"{stem}{index:05d}.{name}.npy" for name in TREE_ARRAYS]
 
 
-def tree_part(index: int, rng: tuple[int, int], enum_dir: str, out_dir: str, rank, by_rank) -> dict:
+def tree_part(part: dict, enum_dir: str, out_dir: str, rank, by_rank) -> dict:
     """Build one part's prefix tree (global candidate ids) and write it.
 
     Writes ``{out_dir}/g{index:05d}.cand/.depth/.end/.ey.npy``.
     """
-    lo, hi = rng
-    inc_ptr, inc_cand, y = _load_edges(enum_dir, lo, hi)
-    cand, depth, end, ey = build_tree(inc_ptr, inc_cand, y, np.asarray(rank), np.asarray(by_rank))
+    d = Path(enum_dir)
     out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
-    for f, arr in zip(_files(out, index, "g"), (cand, depth, end, ey)):
+    edges = np.sort(load_npy(out / "order.npy", mmap=True)[part["lo"]:part["hi"]])
+    inc_ptr = load_npy(d / "inc_ptr.npy", mmap=True)
+    inc_cand = load_npy(d / "inc_cand.npy", mmap=True)
+    y = load_npy(d / "weight.npy", mmap=True)
+    cand, depth, end, ey = build_tree(inc_ptr, inc_cand, y, edges, np.asarray(rank), np.asarray(by_rank))
+    for f, arr in zip(_files(out, part["index"], "g"), (cand, depth, end, ey)):
         save_npy(f, arr)
-    return {"index": index, "edges": hi - lo, "incidences": int(len(inc_cand)), "nodes": int(len(cand)),
-            "ends": int(len(end))}
+    n_inc = int(np.sum(np.asarray(inc_ptr)[edges + 1] - np.asarray(inc_ptr)[edges]))
+    return {**part, "edges": int(len(edges)), "incidences": n_inc, "nodes": int(len(cand)), "ends": int(len(end))}
 
 
 def number_candidates(part_list: list[dict], out_dir: str, n_cand: int) -> np.ndarray:
@@ -105,6 +121,25 @@ def localize_part(part: dict, out_dir: str, new_id) -> dict:
     for f in src:
         f.unlink()
     return {**part, "files": [f.name for f in _files(out, part["index"])], "cand_lo": lo, "cand_hi": hi}
+
+
+def prepare_trees(engine, enum_dir: str, tree_dir: str, sizes: np.ndarray, per_part: int):
+    """All of the fit's preparation: parts, their trees, the first-use numbering.
+
+    Returns ``(part_list, new_id)``; the part files are in ``tree_dir`` (``order.npy``
+    is removed once the trees are built).
+    """
+    sizes = np.asarray(sizes, np.int64)
+    rank = candidate_rank(sizes * (sizes - 1) // 2)
+    by_rank = np.argsort(rank)
+    rank_ref, by_rank_ref = engine.scatter(rank), engine.scatter(by_rank)
+    planned = engine.submit(plan_tree_parts, str(enum_dir), str(tree_dir), rank_ref, per_part).result()
+    built = engine.map(tree_part, planned, str(enum_dir), str(tree_dir), rank_ref, by_rank_ref,
+                       desc="fit: prefix trees")
+    new_id = number_candidates(built, str(tree_dir), len(sizes))
+    part_list = engine.map(localize_part, built, str(tree_dir), engine.scatter(new_id), desc="fit: numbering")
+    (Path(tree_dir) / "order.npy").unlink(missing_ok=True)
+    return part_list, new_id
 
 
 _TREE_CACHE: dict = {}

@@ -5,7 +5,8 @@ Writes  ``enumerate/levels.npy``                       the thresholds, ascending
         ``enumerate/cand_ptr.npy``, ``cand_nodes.npy``  candidate k = nodes[ptr[k]:ptr[k+1]];
         ``enumerate/level_min.npy``, ``level_max.npy``  level indices where k is maximal;
         ``enumerate/inc_ptr.npy``, ``inc_cand.npy``     edge -> candidates (CSR, edge order
-                                                         of the edge store);
+                                                         of the edge store; ``inc_cand``
+                                                         int32 below 2**31 candidates);
         ``enumerate/weight.npy``                        edge weights in that order.
 
 Work units are blocks of edges. Every edge is handled once, whatever the number of
@@ -65,7 +66,7 @@ def run(ctx: StageContext) -> dict:
             comp = pq.read_table(ctx.input_dir("split") / "nodes.parquet", columns=["component"]).column(0).to_numpy()
             dinfo = parts.direct_components(gdir, comp, comps.column("nodes").to_numpy(),
                                             comps.column("edges").to_numpy(), DIRECT_MIN_SIZE, work / "cl")
-            files = ([f"cl/direct.{n}.npy" for n in ("ptr", "nodes", "lmax", "lmin")] + ["graph/skip.npy"]
+            files = ([f"cl/direct.{n}.npy" for n in parts.UNIT_ARRAYS] + ["graph/skip.npy"]
                      if dinfo["direct"] else [])
             RunStore.unit_commit(work, "direct", files, dinfo)
         dinfo = RunStore.unit_info(work, "direct")
@@ -84,15 +85,12 @@ def run(ctx: StageContext) -> dict:
             raise _blow_up_error(ctx, bad[0], gdir, p)
         unit_stats = [RunStore.unit_info(work, f"cl-{t}") for t in tags]
 
-    with ctx.substep("collect"):
-        cinfo = parts.concat_units(work / "cl", tags_all, work)
+    with ctx.substep("collect"):  # candidates in unit order, and the incidence by a counting sort
+        cinfo = ctx.engine.submit(parts.collect_units, work / "cl", tags_all, work, n_edges).result()
+        ctx.worker_cpu += cinfo.pop("cpu", 0.0)
         shutil.rmtree(work / "cl", ignore_errors=True)
-
-    with ctx.substep("incidence"):
-        iinfo = ctx.engine.submit(parts.build_incidence, gdir, work, work).result()
-        ctx.worker_cpu += iinfo.pop("cpu", 0.0)
-    if iinfo["uncovered_edges"]:
-        raise RuntimeError(f"internal error: {iinfo['uncovered_edges']} edges lie in no candidate")
+    if cinfo["uncovered_edges"]:
+        raise RuntimeError(f"internal error: {cinfo['uncovered_edges']} edges lie in no candidate")
 
     # keep what the fit and the results need; drop the CSR
     (gdir / "skip.npy").unlink(missing_ok=True)
@@ -107,7 +105,7 @@ def run(ctx: StageContext) -> dict:
         "units": len(units),
         "candidates": cinfo["candidates"],
         "largest_candidate": cinfo["largest_candidate"],
-        "incidences": iinfo["incidences"],
+        "incidences": cinfo["incidences"],
         "work": int(sum(s.get("work", 0) for s in unit_stats)),
         "direct_components": dinfo["direct"],
         "size_histogram": {str(s): int(c) for s, c in enumerate(hist) if c},

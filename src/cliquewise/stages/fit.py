@@ -28,7 +28,6 @@ import shutil
 import numpy as np
 
 from cliquewise.kernels.em import fit_em, loglik_constant, penalty
-from cliquewise.kernels.prefixtree import candidate_rank
 from cliquewise.parts import fitting as parts
 from cliquewise.stage import StageContext
 from cliquewise.store import RunStore, load_npy, read_json, save_npy, write_json_atomic
@@ -121,20 +120,13 @@ def run(ctx: StageContext) -> dict:
     # count depends on the data only (never on the engine), so results do not either
     total_inc = int(inc_ptr[-1]) if len(inc_ptr) else 0
     per_part = min(p["incidences_per_part"], max(250_000, -(-total_inc // 8)))
-    ranges = parts.plan_parts(np.asarray(inc_ptr), per_part)
     tree_dir = work / "trees"
     with ctx.substep("trees"):
         if RunStore.unit_done(work, "trees"):
             part_list = RunStore.unit_info(work, "trees")["parts"]
         else:
-            rank = candidate_rank(sizes * (sizes - 1) // 2)
-            by_rank = np.argsort(rank)
-            built = ctx.engine.map(_tree_unit, list(enumerate(ranges)), str(enum_dir), str(tree_dir),
-                                   ctx.engine.scatter(rank), ctx.engine.scatter(by_rank), desc="fit: prefix trees")
-            new_id = parts.number_candidates(built, str(tree_dir), len(P))
+            part_list, new_id = parts.prepare_trees(ctx.engine, str(enum_dir), str(tree_dir), sizes, per_part)
             save_npy(tree_dir / "new_id.npy", new_id)
-            part_list = ctx.engine.map(parts.localize_part, built, str(tree_dir), ctx.engine.scatter(new_id),
-                                       desc="fit: numbering")
             RunStore.unit_commit(work, "trees", ["trees/new_id.npy"] + [f"trees/{f}" for r in part_list
                                                                        for f in r["files"]], {"parts": part_list})
         new_id = load_npy(tree_dir / "new_id.npy")
@@ -178,7 +170,7 @@ def run(ctx: StageContext) -> dict:
         "loglik_constant": const,
         "weight_total": float(np.sum(y)),
         "fitted_total": float(np.sum(mu * P)),
-        "parts": len(ranges),
+        "parts": len(part_list),
         "tree_nodes": int(sum(r["nodes"] for r in part_list)),
         "tree_ends": int(sum(r["ends"] for r in part_list)),
         "incidences": int(sum(r["incidences"] for r in part_list)),
@@ -196,11 +188,6 @@ def run(ctx: StageContext) -> dict:
         ctx.engine.client.run(parts.clear_cache)
     shutil.rmtree(tree_dir, ignore_errors=True)
     return {k: report[k] for k in ("candidates", "groups_kept", "iterations", "converged", "loglik", "parts")}
-
-
-def _tree_unit(item, enum_dir, tree_dir, rank, by_rank):
-    index, rng = item
-    return parts.tree_part(index, rng, enum_dir, tree_dir, rank, by_rank)
 
 
 def read_report(stage_dir) -> dict:
