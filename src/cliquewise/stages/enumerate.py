@@ -57,7 +57,10 @@ def run(ctx: StageContext) -> dict:
             RunStore.unit_commit(work, "graph", [f"graph/{f}.npy" for f in parts.GRAPH_FILES + ("levels",)], info)
         info = RunStore.unit_info(work, "graph")
     n_edges = info["edges"]
-    units = parts.plan_units(n_edges, p["edges_per_unit"])
+    # several units per thread so the last ones do not leave threads idle; the
+    # candidates come out in edge order whatever the unit size
+    per_unit = min(p["edges_per_unit"], max(20_000, -(-n_edges // (4 * ctx.engine.nthreads()))))
+    units = parts.plan_units(n_edges, per_unit)
     tags = [f"e{lo:012d}" for lo, _ in units]
 
     with ctx.substep("direct"):  # components that are single-level cliques need no search
