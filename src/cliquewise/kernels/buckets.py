@@ -30,23 +30,49 @@ def bucket_bounds(n_nodes: int, n_buckets: int) -> np.ndarray:
 
 
 @numba.njit(nogil=True, cache=True)
+def _bucket_of(x, n_buckets, space, scale, bounds):
+    """``(x * n_buckets) // space`` without an integer division: a float estimate
+    corrected against the exact bucket boundaries (at most one step off)."""
+    k = np.int64(x * scale)
+    if k >= n_buckets:
+        k = n_buckets - 1
+    while k > 0 and x < bounds[k]:
+        k -= 1
+    while k + 1 < n_buckets and x >= bounds[k + 1]:
+        k += 1
+    return k
+
+
+@numba.njit(nogil=True, cache=True)
 def order_and_bucket(a, b, w, weighted, space, n_buckets, seen, id_like):
     """Ingest's fused row kernel: drop, orient and group one task's rows by bucket.
 
     Drops self-loops (``a == b``) and, when ``weighted``, zero weights; orients each
     pair as ``u = min, v = max``; places rows grouped by the bucket of ``u`` (equal
-    ranges of ``[0, space)``), keeping input order inside a bucket. When ``seen`` is
-    not empty, marks ``seen[a]`` and ``seen[b]`` for every row given (the dense-label
-    route records which labels occur). Output ids have the dtype of ``id_like`` (an
-    empty array: int32 when ``space < 2**31``, which halves the scratch files).
+    ranges of ``[0, space)``, the rule of :func:`bucket_bounds`), keeping input
+    order inside a bucket. When ``seen`` is not empty, marks ``seen[a]`` and
+    ``seen[b]`` for every row given (the dense-label route records which labels
+    occur). Output ids have the dtype of ``id_like`` (an empty array: int32 when
+    ``space < 2**31``, which halves the scratch files).
+
+    The first pass keeps each row's bucket in a byte (or 0xFFFF... for a dropped
+    row) so the second pass neither divides nor re-tests.
 
     Returns ``u, v, w_out, offsets, n_self, n_zero`` (``w_out`` empty when not weighted).
     """
     n = a.shape[0]
     if b.shape[0] != n or (weighted and w.shape[0] != n):
         raise ValueError("a, b and w differ in length")
+    if n_buckets < 1 or n_buckets > 65535:
+        raise ValueError("n_buckets must lie in [1, 65535]")
     mark = seen.shape[0] > 0
     counts = np.zeros(n_buckets + 1, np.int64)
+    bounds = np.empty(n_buckets + 1, np.int64)
+    for k in range(n_buckets + 1):  # smallest u of bucket k: ceil(k * space / n_buckets)
+        bounds[k] = -((-k * space) // n_buckets)
+    scale = n_buckets / max(space, 1)
+    tag = np.empty(n, np.uint16)
+    drop = np.uint16(65535)
     n_self = 0
     n_zero = 0
     for i in range(n):
@@ -59,12 +85,16 @@ def order_and_bucket(a, b, w, weighted, space, n_buckets, seen, id_like):
             seen[y] = True
         if x == y:
             n_self += 1
+            tag[i] = drop
             continue
         if weighted and w[i] == 0.0:
             n_zero += 1
+            tag[i] = drop
             continue
         lo = x if x < y else y
-        counts[(lo * n_buckets) // space + 1] += 1
+        k = _bucket_of(lo, n_buckets, space, scale, bounds) if n_buckets > 1 else 0
+        tag[i] = k
+        counts[k + 1] += 1
     for k in range(n_buckets):
         counts[k + 1] += counts[k]
     m = counts[n_buckets]
@@ -73,13 +103,13 @@ def order_and_bucket(a, b, w, weighted, space, n_buckets, seen, id_like):
     wo = np.empty(m if weighted else 0, np.float64)
     pos = counts[:-1].copy()
     for i in range(n):
+        k = tag[i]
+        if k == drop:
+            continue
         x = a[i]
         y = b[i]
-        if x == y or (weighted and w[i] == 0.0):
-            continue
         if x > y:
             x, y = y, x
-        k = (x * n_buckets) // space
         p = pos[k]
         u[p] = x
         v[p] = y
