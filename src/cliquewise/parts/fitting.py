@@ -26,7 +26,7 @@ from cliquewise.kernels.prefixtree import (build_tree, candidate_rank, check_tre
                                             tree_sweep, tree_unsupported)
 from cliquewise.store import load_npy, save_npy
 
-TREE_ARRAYS = ("cand", "depth", "end", "ey")
+TREE_ARRAYS = ("cand", "depth", "end", "ey")  # plus p*.strag.npy once localized
 
 
 def plan_tree_parts(enum_dir: str, out_dir: str, rank, per_part: int) -> list[dict]:
@@ -82,45 +82,62 @@ def tree_part(part: dict, enum_dir: str, out_dir: str, rank, by_rank) -> dict:
     return {**part, "edges": int(len(edges)), "incidences": n_inc, "nodes": int(len(cand)), "ends": int(len(end))}
 
 
-def number_candidates(part_list: list[dict], out_dir: str, n_cand: int) -> np.ndarray:
+def number_candidates(part_list: list[dict], out_dir: str, n_cand: int) -> tuple[np.ndarray, list[int]]:
     """The candidates' new ids, by first use in the trees (parts in order).
 
-    Candidates no tree uses (none in practice: every candidate's pairs are edges)
-    come last, in id order.
+    Returns ``(new_id, first)`` where the candidates first used by part ``i`` are
+    numbered ``first[i] .. first[i + 1] - 1``. Candidates no tree uses (none in
+    practice: every candidate's pairs are edges) come last, in id order.
     """
     out = Path(out_dir)
     new_id = np.full(n_cand, -1, np.int64)
     nxt = 0
+    first = []
     for part in part_list:
+        first.append(nxt)
         nxt = first_seen_order(load_npy(_files(out, part["index"], "g")[0], mmap=True), new_id, nxt)
+    first.append(nxt)
     rest = np.flatnonzero(new_id < 0)
     new_id[rest] = nxt + np.arange(len(rest))
-    return new_id
+    return new_id, first
 
 
-def localize_part(part: dict, out_dir: str, new_id) -> dict:
-    """Renumber one tree's candidates and store them relative to the part's lowest id.
+def localize_part(part: dict, out_dir: str, new_id, own_lo: int, own_end: int) -> dict:
+    """Renumber one tree's candidates to local ids and write the part's files.
 
-    Writes ``{out_dir}/p{index:05d}.*.npy`` (``cand`` as uint32 when the id range
-    allows, ``depth`` as uint16 when the tree is shallow enough) and removes the
-    ``g*`` files. Returns the part record with ``cand_lo``/``cand_hi``.
+    The candidates a part uses first have the new ids ``[own_lo, own_end)``, one
+    block; they become local ids ``0 .. w - 1``. The few it shares with earlier
+    parts (*stragglers*, ids below ``own_lo``) follow as ``w, w + 1, ...``, and
+    their new ids are stored in ``p{index:05d}.strag.npy``. A sweep then needs
+    ``mu`` and an accumulator only over ``w`` plus the stragglers.
+
+    Writes ``{out_dir}/p{index:05d}.*.npy`` (``cand`` as uint32 when the local ids
+    allow, ``depth`` as uint16 when the tree is shallow enough) and removes the
+    ``g*`` files. Returns the part record with ``cand_lo``/``cand_hi`` (the own
+    block) and ``width`` (local ids in all).
     """
     out = Path(out_dir)
     src = _files(out, part["index"], "g")
     cand, depth, end, ey = (load_npy(f) for f in src)
     cand = np.asarray(new_id)[cand]
-    lo = int(cand.min()) if len(cand) else 0
-    hi = int(cand.max()) if len(cand) else -1
-    rel = cand - lo
-    if hi - lo < 2**32 - 1:
-        rel = rel.astype(np.uint32)  # half the memory traffic of the sweep
+    w = own_end - own_lo
+    old = cand < own_lo
+    strag = np.unique(cand[old])
+    local = cand - own_lo
+    local[old] = w + np.searchsorted(strag, cand[old])
+    width = w + len(strag)
+    if width < 2**32 - 1:
+        local = local.astype(np.uint32)  # half the memory traffic of the sweep
     if len(depth) and depth.max() < 2**16 - 1:
         depth = depth.astype(np.uint16)
-    for f, arr in zip(_files(out, part["index"]), (rel, depth, end, ey)):
+    for f, arr in zip(_files(out, part["index"]), (local, depth, end, ey)):
         save_npy(f, arr)
+    save_npy(out / f"p{part['index']:05d}.strag.npy", strag.astype(np.int64))
     for f in src:
         f.unlink()
-    return {**part, "files": [f.name for f in _files(out, part["index"])], "cand_lo": lo, "cand_hi": hi}
+    files = [f.name for f in _files(out, part["index"])] + [f"p{part['index']:05d}.strag.npy"]
+    return {**part, "files": files, "cand_lo": int(own_lo), "cand_hi": int(own_end) - 1, "width": int(width),
+            "stragglers": int(len(strag))}
 
 
 def prepare_trees(engine, enum_dir: str, tree_dir: str, sizes: np.ndarray, per_part: int):
@@ -136,10 +153,17 @@ def prepare_trees(engine, enum_dir: str, tree_dir: str, sizes: np.ndarray, per_p
     planned = engine.submit(plan_tree_parts, str(enum_dir), str(tree_dir), rank_ref, per_part).result()
     built = engine.map(tree_part, planned, str(enum_dir), str(tree_dir), rank_ref, by_rank_ref,
                        desc="fit: prefix trees")
-    new_id = number_candidates(built, str(tree_dir), len(sizes))
-    part_list = engine.map(localize_part, built, str(tree_dir), engine.scatter(new_id), desc="fit: numbering")
+    new_id, first = number_candidates(built, str(tree_dir), len(sizes))
+    new_ref = engine.scatter(new_id)
+    part_list = engine.map(_localize_item, [(b, first[i], first[i + 1]) for i, b in enumerate(built)],
+                           str(tree_dir), new_ref, desc="fit: numbering")
     (Path(tree_dir) / "order.npy").unlink(missing_ok=True)
     return part_list, new_id
+
+
+def _localize_item(item, out_dir, new_id):
+    part, own_lo, own_end = item
+    return localize_part(part, out_dir, new_id, own_lo, own_end)
 
 
 _TREE_CACHE: dict = {}
@@ -147,21 +171,35 @@ _TREE_CACHE_LIMIT = 64
 
 
 def _load_tree(tree_dir: str, part: dict):
-    """A part's tree arrays, checked once and kept in this process between EM steps.
+    """A part's tree arrays and stragglers, checked once and kept in this process
+    between EM steps.
 
     Keyed by path and modification time, so a rewritten part is read again. The
     arrays are what the fit sweeps every step anyway (memory linear in incidences).
     """
-    files = _files(Path(tree_dir), part["index"])
+    files = _files(Path(tree_dir), part["index"]) + [Path(tree_dir) / f"p{part['index']:05d}.strag.npy"]
     key = (str(tree_dir), part["index"], tuple(f.stat().st_mtime_ns for f in files))
     hit = _TREE_CACHE.get(key)
     if hit is None:
         if len(_TREE_CACHE) >= _TREE_CACHE_LIMIT:
             _TREE_CACHE.clear()
         arrays = tuple(load_npy(f) for f in files)
-        check_tree(*arrays, part["cand_hi"] - part["cand_lo"] + 1)
+        check_tree(*arrays[:4], part["width"])
+        strag = arrays[4]
+        if len(strag) != part["width"] - (part["cand_hi"] - part["cand_lo"] + 1) or (
+                len(strag) and (strag.min() < 0 or strag.max() >= part["cand_lo"])):
+            raise ValueError(f"{files[4]}: stragglers do not match the part")
         hit = _TREE_CACHE[key] = arrays
     return hit
+
+
+def _local(part: dict, strag: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """``x`` (stage numbering) restricted to a part's local ids: its own block, then stragglers."""
+    lo, hi = part["cand_lo"], part["cand_hi"]
+    out = np.empty(part["width"], np.float64)
+    out[:hi - lo + 1] = x[lo:hi + 1]
+    out[hi - lo + 1:] = x[strag]
+    return out
 
 
 def clear_cache() -> None:
@@ -170,24 +208,37 @@ def clear_cache() -> None:
 
 
 def em_part(part: dict, tree_dir: str, mu: np.ndarray, want_loglik: bool = True) -> dict:
-    """The map of one EM step on one part: accumulator slice and ``sum Y log lambda``."""
-    c_lo, c_hi = part["cand_lo"], part["cand_hi"]
-    if c_hi < c_lo:
-        return {"cand_lo": 0, "acc": np.zeros(0), "loglik": 0.0}
-    cand, depth, end, ey = _load_tree(tree_dir, part)
-    acc = np.zeros(c_hi - c_lo + 1, np.float64)
-    ll = tree_sweep(cand, depth, end, ey, mu[c_lo:c_hi + 1], acc, want_loglik)
-    return {"cand_lo": c_lo, "acc": acc, "loglik": float(ll)}
+    """The map of one EM step on one part: accumulators (own block and stragglers)
+    and ``sum Y log lambda``."""
+    if part["width"] == 0:
+        return {"cand_lo": 0, "acc": np.zeros(0), "strag": np.zeros(0, np.int64), "strag_acc": np.zeros(0),
+                "loglik": 0.0}
+    cand, depth, end, ey, strag = _load_tree(tree_dir, part)
+    acc = np.zeros(part["width"], np.float64)
+    ll = tree_sweep(cand, depth, end, ey, _local(part, strag, mu), acc, want_loglik)
+    w = part["cand_hi"] - part["cand_lo"] + 1
+    return {"cand_lo": part["cand_lo"], "acc": acc[:w], "strag": strag, "strag_acc": acc[w:], "loglik": float(ll)}
+
+
+def add_partial(acc: np.ndarray, res: dict) -> None:
+    """Add one :func:`em_part` result into the stage-wide accumulator."""
+    lo = res["cand_lo"]
+    acc[lo:lo + len(res["acc"])] += res["acc"]
+    acc[res["strag"]] += res["strag_acc"]  # stragglers are distinct within a part
 
 
 def support_part(part: dict, tree_dir: str, mu_kept: np.ndarray, mu_full: np.ndarray) -> np.ndarray:
     """Candidates (stage numbering) to keep so that each of this part's ends keeps a positive rate."""
-    c_lo, c_hi = part["cand_lo"], part["cand_hi"]
-    if c_hi < c_lo:
+    if part["width"] == 0:
         return np.empty(0, np.int64)
-    cand, depth, end, _ = _load_tree(tree_dir, part)
-    rel = tree_unsupported(cand, depth, end, mu_kept[c_lo:c_hi + 1], mu_full[c_lo:c_hi + 1])
-    return rel.astype(np.int64) + c_lo
+    cand, depth, end, _, strag = _load_tree(tree_dir, part)
+    rel = tree_unsupported(cand, depth, end, _local(part, strag, mu_kept), _local(part, strag, mu_full))
+    rel = rel.astype(np.int64)
+    w = part["cand_hi"] - part["cand_lo"] + 1
+    out = rel + part["cand_lo"]
+    late = rel >= w
+    out[late] = strag[rel[late] - w]
+    return out
 
 
 def restore_support(engine, part_list, tree_dir: str, mu_kept, mu_full) -> np.ndarray:

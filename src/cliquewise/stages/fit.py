@@ -59,8 +59,7 @@ class DistributedStep:
         acc = np.zeros(len(mu), np.float64)
         total = 0.0
         for r in res:  # part order: deterministic whatever the engine
-            lo = r["cand_lo"]
-            acc[lo:lo + len(r["acc"])] += r["acc"]
+            parts.add_partial(acc, r)
             total += r["loglik"]
         return acc, total
 
