@@ -29,6 +29,16 @@ from cliquewise.store import load_npy, save_npy
 TREE_ARRAYS = ("cand", "depth", "end", "ey")  # plus p*.strag.npy once localized
 
 
+MIN_PARTS = 16  # enough to balance threads: the parts whose edges have small tops cost more per node
+
+
+def part_size(total_incidences: int, incidences_per_part: int) -> int:
+    """Incidences per part: at most ``incidences_per_part``, and small enough for
+    :data:`MIN_PARTS` parts once there is enough work (at least 250k incidences a
+    part). It depends on the data only (never on the engine), so results do not either."""
+    return min(int(incidences_per_part), max(250_000, -(-int(total_incidences) // MIN_PARTS)))
+
+
 def plan_tree_parts(enum_dir: str, out_dir: str, rank, per_part: int) -> list[dict]:
     """Order the edges by top and cut the order into parts of whole subtrees.
 
@@ -218,6 +228,15 @@ def em_part(part: dict, tree_dir: str, mu: np.ndarray, want_loglik: bool = True)
     ll = tree_sweep(cand, depth, end, ey, _local(part, strag, mu), acc, want_loglik)
     w = part["cand_hi"] - part["cand_lo"] + 1
     return {"cand_lo": part["cand_lo"], "acc": acc[:w], "strag": strag, "strag_acc": acc[w:], "loglik": float(ll)}
+
+
+def heaviest_first(part_list: list[dict]) -> list[int]:
+    """Positions of the parts, most expensive sweep first (longest-processing-time
+    scheduling: the engine starts tasks in the order given, so a heavy part left
+    for last would keep one thread busy while the others idle). Cost estimate: tree
+    nodes plus twice the local width (a wide part misses the cache more often)."""
+    cost = [p.get("nodes", 0) + 2 * p.get("width", 0) for p in part_list]
+    return sorted(range(len(part_list)), key=lambda i: (-cost[i], i))
 
 
 def add_partial(acc: np.ndarray, res: dict) -> None:

@@ -49,13 +49,18 @@ class DistributedStep:
         self.ctx = ctx
         self.tree_dir = str(tree_dir)
         self.parts = part_list
+        self.order = parts.heaviest_first(part_list)
         self.P = P
         self.evals = 0
 
     def partial(self, mu, want_loglik=True):
         eng = self.ctx.engine
         mu_ref = eng.scatter(mu)
-        res = eng.map(parts.em_part, self.parts, self.tree_dir, mu_ref, want_loglik)
+        order = self.order
+        done = eng.map(parts.em_part, [self.parts[i] for i in order], self.tree_dir, mu_ref, want_loglik)
+        res = [None] * len(order)
+        for i, r in zip(order, done):
+            res[i] = r
         acc = np.zeros(len(mu), np.float64)
         total = 0.0
         for r in res:  # part order: deterministic whatever the engine
@@ -115,10 +120,8 @@ def run(ctx: StageContext) -> dict:
     sizes = np.diff(cand_ptr).astype(np.float64)
     P = sizes * (sizes - 1.0) / 2.0
     inc_ptr = load_npy(enum_dir / "inc_ptr.npy", mmap=True)
-    # at least 8 parts once there is enough work, so every thread gets some; the part
-    # count depends on the data only (never on the engine), so results do not either
     total_inc = int(inc_ptr[-1]) if len(inc_ptr) else 0
-    per_part = min(p["incidences_per_part"], max(250_000, -(-total_inc // 8)))
+    per_part = parts.part_size(total_inc, p["incidences_per_part"])
     tree_dir = work / "trees"
     with ctx.substep("trees"):
         if RunStore.unit_done(work, "trees"):
