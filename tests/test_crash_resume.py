@@ -14,7 +14,9 @@ checkpoints of both phases, between a checkpoint file and its marker); inside
 results; between a stage folder and its manifest; and between stages.
 
 One small simulated export (invented Harbourview data, ``cliquewise.simulate``) and
-one reference run are shared by all cases. The job is configured so that every
+one reference run are shared by all cases; the reference run records every fault
+point it passes, and each case names its kill point by stage, kind and position
+(``_faults.resolve``), so unit names can change without breaking the harness. The job is configured so that every
 kind of unit occurs several times: 3 read tasks, 3 buckets, 8 edge blocks, several
 fit parts, an EM checkpoint every 2 iterations and a pruned refit.
 """
@@ -31,6 +33,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from _faults import STAGES, read_trace, resolve
 from _support import run_cli
 
 from cliquewise.store import RunStore
@@ -53,35 +56,42 @@ incidences_per_part = 5000
 
 TABLES = ("nodes", "cliques", "members")
 
-# (fault point, stage that must not be complete after the kill)
+# (stage, kind of fault point, which one) -> resolved against a traced run of the job;
+# the stage named is the one that must not be complete after the kill
 KILL_POINTS = [
-    ("task:scan_labels@2", "ingest"),          # while labels are being scanned
-    ("unit:labels", "ingest"),                 # label table checkpointed
-    ("pre-unit:map-t00001", "ingest"),         # map unit written, marker missing
-    ("unit:agg-00001", "ingest"),              # one edge partition checkpointed
-    ("before-manifest:ingest", "ingest"),      # stage folder in place, no manifest
-    ("substep:split:union-find", "split"),     # components found, nothing written
-    ("before-manifest:split", "split"),
-    ("unit:graph", "enumerate"),               # CSR built
-    ("task:_unit@3", "enumerate"),             # inside the edge-block units
-    ("pre-unit:cl-e000000001200", "enumerate"),  # a unit's cliques written, marker missing
-    ("unit:cl-e000000002000", "enumerate"),    # after an enumeration unit's checkpoint
-    ("substep:enumerate:collect", "enumerate"),  # candidates collected, no incidence yet
-    ("stage:enumerate", "fit"),                # between stages
-    ("unit:classes", "fit"),                   # edge classes written
-    ("task:em_part@40", "fit"),                # in the middle of an EM step
-    ("unit:ckpt-full@3", "fit"),               # between EM checkpoints
-    ("pre-unit:ckpt-full@5", "fit"),           # checkpoint file written, marker missing
-    ("unit:ckpt-kept@2", "fit"),               # between checkpoints of the pruned refit
-    ("before-manifest:fit", "fit"),
-    ("substep:results:cliques", "results"),    # cliques table written, members not
-    ("before-manifest:results", "results"),
+    ("ingest", "task", 1),               # while labels are being scanned
+    ("ingest", "unit", 0),               # first unit checkpointed (the label table)
+    ("ingest", "pre-unit", 1),           # a unit's files written, its marker missing
+    ("ingest", "unit", -1),              # the last edge partition checkpointed
+    ("ingest", "before-manifest", 0),    # stage folder in place, no manifest
+    ("split", "substep", 0),             # components found, nothing written
+    ("split", "before-manifest", 0),
+    ("enumerate", "unit", 0),            # CSR built
+    ("enumerate", "task", 3),            # while edge-block units run
+    ("enumerate", "pre-unit", "mid"),    # a unit's cliques written, its marker missing
+    ("enumerate", "unit", -1),           # after an enumeration unit's checkpoint
+    ("enumerate", "substep", -1),        # candidates collected, stage not committed
+    ("enumerate", "stage", 0),           # between stages
+    ("fit", "unit", 0),                  # the fit's parts prepared
+    ("fit", "task", 40),                 # in the middle of an EM step
+    ("fit", "unit", 3),                  # between EM checkpoints
+    ("fit", "pre-unit", 5),              # checkpoint file written, marker missing
+    ("fit", "unit", -3),                 # between checkpoints of the pruned refit
+    ("fit", "before-manifest", 0),
+    ("results", "substep", 1),           # a table written, the next not
+    ("results", "before-manifest", 0),
 ]
 
 
-def cli_process(args, fault=None, cwd=None):
+def _id(point) -> str:
+    return "-".join(map(str, point))
+
+
+def cli_process(args, fault=None, cwd=None, env_extra=None):
     env = dict(os.environ)
-    env.pop("CLIQUEWISE_FAULT", None)
+    for var in ("CLIQUEWISE_FAULT", "CLIQUEWISE_FAULT_ONCE", "CLIQUEWISE_FAULT_TRACE"):
+        env.pop(var, None)
+    env.update(env_extra or {})
     if fault:
         env["CLIQUEWISE_FAULT"] = fault
     return subprocess.run([sys.executable, "-m", "cliquewise.cli", "--quiet", *map(str, args)],
@@ -113,25 +123,30 @@ def job(tmp_path_factory):
     root = tmp_path_factory.mktemp("crash")
     simulate(root, nodes=400, seed=3, partitions=3)
     (root / "job.toml").write_text(JOB, encoding="utf-8")
-    proc = cli_process(["run", root / "job.toml", "--run-dir", root / "reference"])
+    proc = cli_process(["run", root / "job.toml", "--run-dir", root / "reference"],
+                       env_extra={"CLIQUEWISE_FAULT_TRACE": str(root / "trace.txt")})
     assert proc.returncode == 0, proc.stderr
     ref = read_results(root / "reference")
+    trace = read_trace(root / "trace.txt")
     man = json.loads((root / "reference" / "enumerate" / "manifest.json").read_text())
     fit = json.loads((root / "reference" / "fit" / "report.json").read_text())
     # the job really has the units the kill points name
     assert man["counts"]["units"] >= 6 and fit["parts"] >= 3 and fit["pruned"] > 0
     assert fit["iterations_full"] >= 10 and fit["iterations_refit"] >= 4
-    return root, ref
+    return root, ref, trace
 
 
-@pytest.mark.parametrize("point, incomplete", KILL_POINTS, ids=[p for p, _ in KILL_POINTS])
-def test_kill_then_resume_gives_identical_results(job, tmp_path, point, incomplete):
-    root, ref = job
+@pytest.mark.parametrize("point", KILL_POINTS, ids=[_id(p) for p in KILL_POINTS])
+def test_kill_then_resume_gives_identical_results(job, tmp_path, point):
+    root, ref, trace = job
+    stage, kind, index = point
+    fault = resolve(trace, stage, kind, index)
+    incomplete = STAGES[STAGES.index(stage) + 1] if kind == "stage" else stage
     run_dir = tmp_path / "run"
-    crashed = cli_process(["run", root / "job.toml", "--run-dir", run_dir], fault=point)
-    assert crashed.returncode == -9, f"the run did not die at {point}: {crashed.returncode} {crashed.stderr}"
+    crashed = cli_process(["run", root / "job.toml", "--run-dir", run_dir], fault=fault)
+    assert crashed.returncode == -9, f"the run did not die at {fault}: {crashed.returncode} {crashed.stderr}"
     ok, why = RunStore(run_dir, create=False).verify(incomplete)
-    assert not ok, f"{incomplete} is marked complete after a kill at {point}"
+    assert not ok, f"{incomplete} is marked complete after a kill at {fault}"
     assert not (run_dir / "results" / "manifest.json").exists()
     rc, out, err = run_cli("resume", run_dir)
     assert rc == 0, err
@@ -141,13 +156,14 @@ def test_kill_then_resume_gives_identical_results(job, tmp_path, point, incomple
 
 def test_repeated_kills_during_resumes(job, tmp_path):
     # a resume can itself be killed: four crashes in a row, each further along
-    root, ref = job
+    root, ref, trace = job
     run_dir = tmp_path / "run"
-    first = cli_process(["run", root / "job.toml", "--run-dir", run_dir], fault="unit:map-t00002")
+    first = cli_process(["run", root / "job.toml", "--run-dir", run_dir], fault=resolve(trace, "ingest", "unit", -2))
     assert first.returncode == -9, first.stderr
-    for point in ("unit:cl-e000000000800", "unit:ckpt-full@2", "unit:ckpt-full@4", "substep:results:nodes"):
-        again = cli_process(["resume", run_dir], fault=point)
-        assert again.returncode == -9, (point, again.stderr)
+    for point in (("enumerate", "unit", "mid"), ("fit", "unit", 2), ("fit", "unit", 4), ("results", "substep", 0)):
+        fault = resolve(trace, *point)
+        again = cli_process(["resume", run_dir], fault=fault)
+        assert again.returncode == -9, (fault, again.stderr)
     rc, _, err = run_cli("resume", run_dir)
     assert rc == 0, err
     assert_identical(read_results(run_dir), ref)

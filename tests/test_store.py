@@ -137,6 +137,7 @@ def test_unwritable_run_dir_is_a_clear_error(tmp_path):
 
 def _cli(args, env_extra=None, cwd=None):
     env = dict(os.environ)
+    env.pop("CLIQUEWISE_FAULT_TRACE", None)
     env.update(env_extra or {})
     return subprocess.run([sys.executable, "-m", "cliquewise.cli", "--quiet", *map(str, args)],
                           capture_output=True, text=True, env=env, cwd=cwd, timeout=300)
@@ -316,20 +317,27 @@ def test_stray_work_folders_are_ignored_or_cleaned(finished, tmp_path):
     _assert_same(run, finished)
 
 
-def test_damaged_unit_checkpoint_is_redone(tmp_path):
-    # a run killed after an enumeration unit, whose checkpointed file is then truncated
+def test_damaged_unit_checkpoint_is_redone(tmp_path, monkeypatch):
+    # a run killed after an enumeration unit, whose checkpointed files are then damaged
+    from _faults import read_trace, resolve
+
     lesmis_export(seed=3).to_parquet(tmp_path / "export.parquet")
     (tmp_path / "job.toml").write_text('[input]\nedges = "export.parquet"\n[candidates]\nedges_per_unit = 60\n')
-    killed = _cli(["run", tmp_path / "job.toml", "--run-dir", tmp_path / "killed"],
-                  {"CLIQUEWISE_FAULT": "unit:cl-e000000000120"})
-    assert killed.returncode == -9, killed.stderr
-    files = list((tmp_path / "killed" / ".work").glob("enumerate-*/cl/*e000000000060*.npy"))
-    assert files, "the first units' files are on disk"
-    for f in files:
-        _truncate(f)
-    assert _resume(tmp_path / "killed")["enumerate"]
+    monkeypatch.setenv("CLIQUEWISE_FAULT_TRACE", str(tmp_path / "trace.txt"))
     rc, _, err = _run_cli("run", tmp_path / "job.toml", "--run-dir", tmp_path / "straight")
     assert rc == 0, err
+    monkeypatch.delenv("CLIQUEWISE_FAULT_TRACE")
+    fault = resolve(read_trace(tmp_path / "trace.txt"), "enumerate", "unit", "mid")
+    killed = _cli(["run", tmp_path / "job.toml", "--run-dir", tmp_path / "killed"], {"CLIQUEWISE_FAULT": fault})
+    assert killed.returncode == -9, killed.stderr
+    work = next((tmp_path / "killed" / ".work").glob("enumerate-*"))
+    damaged = 0
+    for marker in (work / "units").glob("*.json"):
+        for rel in json.loads(marker.read_text())["files"]:
+            _truncate(work / rel)
+            damaged += 1
+    assert damaged, "checkpointed unit files are on disk"
+    assert _resume(tmp_path / "killed")["enumerate"]
     _assert_same(tmp_path / "killed", tmp_path / "straight")
 
 

@@ -22,6 +22,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from _faults import most_frequent_task, read_trace
 from _support import run_cli
 
 from cliquewise.config import load_pipeline
@@ -57,12 +58,19 @@ def job(tmp_path_factory):
     simulate(root, nodes=300, seed=5)
     (root / "job.toml").write_text(JOB, encoding="utf-8")
     ref = root / "reference"
-    # results do not depend on the engine: the reference runs on in-process threads
-    run_pipeline(settings(root, ref), progress=False)
+    # results do not depend on the engine: the reference runs on in-process threads,
+    # recording the fault points it passes (to find the tasks to kill workers in)
+    os.environ["CLIQUEWISE_FAULT_TRACE"] = str(root / "trace.txt")
+    try:
+        run_pipeline(settings(root, ref), progress=False)
+    finally:
+        del os.environ["CLIQUEWISE_FAULT_TRACE"]
+    trace = read_trace(root / "trace.txt")
+    tasks = {stage: most_frequent_task(trace, stage) for stage in ("enumerate", "fit")}
     fit = json.loads((ref / "fit" / "report.json").read_text())
     enum = json.loads((ref / "enumerate" / "manifest.json").read_text())
     assert enum["counts"]["units"] >= 4 and fit["parts"] >= 3  # work really spreads over workers
-    return root, ref
+    return root, ref, tasks
 
 
 def cluster() -> Engine:
@@ -83,9 +91,10 @@ def assert_same_results(a: Path, b: Path) -> None:
                                   np.load(b / "fit" / "mu.npy", allow_pickle=False))
 
 
-@pytest.mark.parametrize("fault", ["task:_unit@2", "task:em_part@6"], ids=["enumerate", "fit"])
-def test_worker_killed_once_run_completes_identically(job, tmp_path, monkeypatch, fault):
-    root, ref = job
+@pytest.mark.parametrize("stage, nth", [("enumerate", 2), ("fit", 6)])
+def test_worker_killed_once_run_completes_identically(job, tmp_path, monkeypatch, stage, nth):
+    root, ref, tasks = job
+    fault = f"{tasks[stage]}@{nth}"  # the nth edge-block unit / EM part a worker starts
     once = tmp_path / "fired"
     # the workers inherit this environment when they start (and restart)
     monkeypatch.setenv("CLIQUEWISE_FAULT", fault)
@@ -101,9 +110,9 @@ def test_worker_killed_once_run_completes_identically(job, tmp_path, monkeypatch
 
 
 def test_workers_that_keep_dying_stop_the_run_clearly_then_resume(job, tmp_path):
-    root, ref = job
+    root, ref, tasks = job
     run_dir = tmp_path / "run"
-    env = dict(os.environ, CLIQUEWISE_FAULT="task:_unit", DASK_DISTRIBUTED__SCHEDULER__ALLOWED_FAILURES="1")
+    env = dict(os.environ, CLIQUEWISE_FAULT=tasks["enumerate"], DASK_DISTRIBUTED__SCHEDULER__ALLOWED_FAILURES="1")
     env.pop("CLIQUEWISE_FAULT_ONCE", None)
     proc = subprocess.run([sys.executable, "-m", "cliquewise.cli", "--quiet", "run", str(root / "job.toml"),
                            "--run-dir", str(run_dir), "--workers", "2", "--threads", "1"],
@@ -111,7 +120,8 @@ def test_workers_that_keep_dying_stop_the_run_clearly_then_resume(job, tmp_path)
     assert proc.returncode == 2, proc.stderr
     errors = [ln for ln in proc.stderr.splitlines() if ln.startswith("cliquewise: error:")]
     assert len(errors) == 1 and "Traceback" not in proc.stderr, proc.stderr
-    assert "worker processes died" in errors[0] and "enumerate: cliques" in errors[0] and "cliquewise resume" in errors[0]
+    assert "worker processes died" in errors[0] and "cliquewise resume" in errors[0]
+    assert "enumerate" in errors[0] or tasks["enumerate"].split(":")[1] in errors[0]  # says what was running
     store = RunStore(run_dir, create=False)
     assert store.verify("split")[0] and not store.verify("enumerate")[0]
     rc, _, err = run_cli("resume", run_dir)

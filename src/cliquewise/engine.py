@@ -235,7 +235,7 @@ class Engine:
 def _with_fault_point(func: Callable) -> Callable:
     """``func`` itself, or (only when the crash tests set ``CLIQUEWISE_FAULT``) a
     wrapper that passes the fault point ``task:<name>`` before calling it."""
-    if not os.environ.get("CLIQUEWISE_FAULT"):
+    if not (os.environ.get("CLIQUEWISE_FAULT") or os.environ.get("CLIQUEWISE_FAULT_TRACE")):
         return func
     return _FaultTask(func)
 

@@ -339,14 +339,20 @@ class RunStore:
 # * ``stage:<stage>``           after a stage completes.
 #
 # With ``CLIQUEWISE_FAULT_ONCE=PATH`` the kill happens at most once across all
-# processes (the first to create PATH dies; a restarted worker does not). The
-# crash and worker-failure tests use these to kill runs at exact points. Nothing
-# happens when ``CLIQUEWISE_FAULT`` is unset.
+# processes (the first to create PATH dies; a restarted worker does not).
+# ``CLIQUEWISE_FAULT_TRACE=PATH`` appends the name of every point passed to PATH,
+# so tests can choose kill points from a real run instead of hard-coding unit
+# names. The crash and worker-failure tests use these to kill runs at exact
+# points. Nothing happens when neither variable is set.
 _fault_hits: dict[str, int] = {}
 
 
 def fault_point(name: str) -> None:
     """Kill this process (SIGKILL) here if ``CLIQUEWISE_FAULT`` asks for it (tests only)."""
+    trace = os.environ.get("CLIQUEWISE_FAULT_TRACE")
+    if trace:
+        with open(trace, "a", encoding="utf-8") as fh:
+            fh.write(name + "\n")
     spec = os.environ.get("CLIQUEWISE_FAULT")
     if not spec:
         return
