@@ -160,6 +160,25 @@ def cmd_status(args) -> int:
     return 0
 
 
+def cmd_profile(args) -> int:
+    from cliquewise.analysis.profile import format_profile, plot_profile, profile_json, stage_profile
+    from cliquewise.store import RunStore
+
+    if RunStore(args.run_dir, create=False).manifest("ingest") is None:
+        raise _UserError(f"{args.run_dir}: no completed stage to profile (run or resume it first)")
+    rows = stage_profile(args.run_dir)
+    if args.json:
+        print(profile_json(args.run_dir))
+    else:
+        print(format_profile(rows, counts=True))
+    png = Path(args.png) if args.png else Path(args.run_dir) / "profile.png"
+    if not args.no_png:
+        plot_profile(rows, png)
+        if not args.json:
+            print(f"chart: {png}")
+    return 0
+
+
 def cmd_simulate(args) -> int:
     from cliquewise.simulate import simulate
 
@@ -314,6 +333,13 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("run_dir")
     r.add_argument("--json", action="store_true")
     r.set_defaults(func=cmd_status)
+
+    r = sub.add_parser("profile", help="time, memory, work and throughput of every stage and sub-step")
+    r.add_argument("run_dir")
+    r.add_argument("--json", action="store_true", help="print the table as JSON")
+    r.add_argument("--png", metavar="FILE", help="bar chart file (default RUN_DIR/profile.png)")
+    r.add_argument("--no-png", action="store_true", help="no chart")
+    r.set_defaults(func=cmd_profile)
 
     r = sub.add_parser("simulate", help="write an invented export with planted groups")
     r.add_argument("--out", required=True, metavar="DIR")

@@ -49,19 +49,57 @@ class StageContext:
         return _Substep(self, name)
 
 
+def _reset_peak_rss() -> bool:
+    """Reset this process's peak resident set (Linux: ``/proc/self/clear_refs``)."""
+    try:
+        with open("/proc/self/clear_refs", "w") as fh:
+            fh.write("5")
+        return True
+    except OSError:
+        return False
+
+
+def _peak_rss() -> int | None:
+    """This process's peak resident set since the last reset (``VmHWM``), in bytes."""
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return None
+
+
 class _Substep:
+    """Times one sub-step; also its peak memory (this process, threads included)
+    and the work counts the stage reports with :meth:`count`."""
+
     def __init__(self, ctx: StageContext, name: str):
         self.ctx, self.name = ctx, name
+        self.counts: dict = {}
+
+    def count(self, **counts) -> None:
+        """Record work counts of this sub-step (rows, edges, iterations, ...)."""
+        self.counts.update({k: (int(v) if isinstance(v, (bool, int)) or hasattr(v, "__index__") else v)
+                            for k, v in counts.items()})
 
     def __enter__(self):
+        self.peak_ok = _reset_peak_rss()
         self.t0 = time.perf_counter()
         self.c0 = time.process_time()
         return self
 
     def __exit__(self, *exc):
-        rec = self.ctx.substeps.setdefault(self.name, {"wall_seconds": 0.0, "cpu_seconds": 0.0})
+        rec = self.ctx.substeps.setdefault(self.name, {"wall_seconds": 0.0, "cpu_seconds": 0.0,
+                                                       "order": len(self.ctx.substeps)})
         rec["wall_seconds"] = round(rec["wall_seconds"] + time.perf_counter() - self.t0, 4)
         rec["cpu_seconds"] = round(rec["cpu_seconds"] + time.process_time() - self.c0, 4)
+        peak = _peak_rss() if self.peak_ok else None
+        if peak is not None:
+            rec["peak_rss_bytes"] = max(rec.get("peak_rss_bytes", 0), peak)
+        if self.counts:
+            rec.setdefault("counts", {}).update(self.counts)
         if exc[0] is None:
             fault_point(f"substep:{self.ctx.name}:{self.name}")
 

@@ -50,12 +50,13 @@ def run(ctx: StageContext) -> dict:
     edge_files = sorted((ingest_dir / "edges").glob("part-*.parquet"))
     gdir = work / "graph"
 
-    with ctx.substep("graph"):
+    with ctx.substep("graph") as step:
         if not RunStore.unit_done(work, "graph"):
             info = ctx.engine.submit(parts.build_graph, edge_files, n_nodes, p["levels"], gdir).result()
             ctx.worker_cpu += info.pop("cpu", 0.0)
             RunStore.unit_commit(work, "graph", [f"graph/{f}.npy" for f in parts.GRAPH_FILES + ("levels",)], info)
         info = RunStore.unit_info(work, "graph")
+        step.count(edges=info["edges"], levels=info["levels"])
     n_edges = info["edges"]
     # several units per thread so the last ones do not leave threads idle; the
     # candidates come out in edge order whatever the unit size
@@ -78,7 +79,7 @@ def run(ctx: StageContext) -> dict:
     else:
         tags_all = tags
 
-    with ctx.substep("cliques"):
+    with ctx.substep("cliques") as step:
         todo = [(lo, hi, tag) for (lo, hi), tag in zip(units, tags) if not RunStore.unit_done(work, f"cl-{tag}")]
         results = ctx.engine.map(_unit, todo, str(gdir), p["max_cliques"], p["max_seconds"], str(work),
                                  desc="enumerate: cliques")
@@ -87,9 +88,11 @@ def run(ctx: StageContext) -> dict:
         if bad:
             raise _blow_up_error(ctx, bad[0], gdir, p)
         unit_stats = [RunStore.unit_info(work, f"cl-{t}") for t in tags]
+        step.count(edges=n_edges, units=len(todo), candidates=sum(s.get("candidates", 0) for s in unit_stats))
 
-    with ctx.substep("collect"):  # candidates in unit order, and the incidence by a counting sort
+    with ctx.substep("collect") as step:  # candidates in unit order, and the incidence by a counting sort
         cinfo = ctx.engine.submit(parts.collect_units, work / "cl", tags_all, work, n_edges).result()
+        step.count(candidates=cinfo["candidates"], incidences=cinfo["incidences"])
         ctx.worker_cpu += cinfo.pop("cpu", 0.0)
         shutil.rmtree(work / "cl", ignore_errors=True)
     if cinfo["uncovered_edges"]:

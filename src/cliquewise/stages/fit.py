@@ -123,7 +123,7 @@ def run(ctx: StageContext) -> dict:
     total_inc = int(inc_ptr[-1]) if len(inc_ptr) else 0
     per_part = parts.part_size(total_inc, p["incidences_per_part"])
     tree_dir = work / "trees"
-    with ctx.substep("trees"):
+    with ctx.substep("trees") as sub:
         if RunStore.unit_done(work, "trees"):
             part_list = RunStore.unit_info(work, "trees")["parts"]
         else:
@@ -132,6 +132,7 @@ def run(ctx: StageContext) -> dict:
             RunStore.unit_commit(work, "trees", ["trees/new_id.npy"] + [f"trees/{f}" for r in part_list
                                                                        for f in r["files"]], {"parts": part_list})
         new_id = load_npy(tree_dir / "new_id.npy")
+        sub.count(incidences=total_inc, tree_nodes=sum(r["nodes"] for r in part_list), parts=len(part_list))
     inv = np.empty_like(new_id)
     inv[new_id] = np.arange(len(new_id))
     P_stage = P[inv]  # the EM runs in the trees' numbering: position new_id[k] holds candidate k
@@ -140,16 +141,20 @@ def run(ctx: StageContext) -> dict:
     with ctx.substep("start"):
         acc, _ = step.partial(np.ones(len(P)))
         mu0 = acc / P_stage  # each edge's weight shared equally among its candidates
-    with ctx.substep("em"):
+    with ctx.substep("em") as sub:
+        evals0 = step.evals
         full = _fit_phase(ctx, step, mu0, p, "full", work)
+        sub.count(iterations=full.iterations, evaluations=step.evals - evals0, incidences=total_inc)
     mu_full = full.mu
     with ctx.substep("prune"):
         mu = np.where(mu_full * P_stage < p["prune"], 0.0, mu_full)
         restore = parts.restore_support(ctx.engine, part_list, str(tree_dir), mu, mu_full)
         mu[restore] = mu_full[restore]
         pruned = int(((mu == 0) & (mu_full > 0)).sum())
-    with ctx.substep("refit"):
+    with ctx.substep("refit") as sub:
+        evals0 = step.evals
         refit = _fit_phase(ctx, step, mu, p, "kept", work) if pruned else full
+        sub.count(iterations=refit.iterations if pruned else 0, evaluations=step.evals - evals0)
     mu = refit.mu[new_id]  # back to the candidates' own numbering
     mu_full = mu_full[new_id]
     y = load_npy(enum_dir / "weight.npy", mmap=True)

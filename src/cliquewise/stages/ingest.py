@@ -107,11 +107,12 @@ def run(ctx: StageContext, inputs: list[dict]) -> dict:
     n_buckets = min(n_buckets, max(1, space))
 
     # 2. map and bucket --------------------------------------------------------------
-    with ctx.substep("map"):
+    with ctx.substep("map") as step:
         todo = [t for t in tasks if not RunStore.unit_done(work, f"map-{t.name}")]
         done_info = {t.name: RunStore.unit_info(work, f"map-{t.name}") for t in tasks if t not in todo}
         results = _guard(lambda: eng.map(_map_unit, todo, cols, window, mapper, n_buckets,
                                          p["on_invalid"], str(work), desc="ingest: map"))
+        step.count(rows=sum(r["counts"]["rows_read"] for r in results), tasks=len(todo))
     failed = [r for r in results if r["failed"]]
     counts = _sum_counts([r["counts"] for r in results] + [d["counts"] for d in done_info.values()])
     if failed:
@@ -138,11 +139,12 @@ def run(ctx: StageContext, inputs: list[dict]) -> dict:
 
     # 3. aggregate buckets -----------------------------------------------------------
     bounds = parts_bounds(space, n_buckets)
-    with ctx.substep("aggregate"):
+    with ctx.substep("aggregate") as step:
         jobs = [b for b in range(n_buckets) if not RunStore.unit_done(work, f"agg-{b:05d}")]
         agg = _guard(lambda: eng.map(_agg_unit, jobs, bounds, str(work), [t.name for t in tasks], p["merge"],
                                      bool(cols.weight), str(rank_file) if rank_file else None,
                                      desc="ingest: aggregate"))
+        step.count(rows=sum(a["rows_in"] for a in agg), pairs=sum(a["pairs"] for a in agg), buckets=len(jobs))
         agg_info = {a["bucket"]: a for a in agg}
         for b in range(n_buckets):
             if b not in agg_info:
