@@ -179,6 +179,31 @@ def cmd_profile(args) -> int:
     return 0
 
 
+def cmd_scale(args) -> int:
+    from cliquewise.analysis.scale import scale_check
+    from cliquewise.config import Settings, parse_levels
+
+    try:
+        sizes = [int(float(x)) for x in args.sizes.split(",") if x.strip()]
+    except ValueError:
+        raise _UserError(f"--sizes takes edge counts separated by commas, e.g. 1e5,1e6,1e7 (got {args.sizes!r})")
+    if not sizes or min(sizes) < 100:
+        raise _UserError("--sizes needs at least one edge count of 100 or more")
+    s = Settings()
+    _engine_from_args(s, args)
+    engine = {k: v for k, v in s.engine.__dict__.items() if v}
+    res = scale_check(args.out, sizes=sizes, seed=args.seed, engine_settings=engine,
+                      levels=parse_levels(args.levels) if args.levels else "all", max_slope=args.max_slope,
+                      progress=not args.quiet, log=(lambda m: None) if args.quiet else
+                      (lambda m: print(m, file=sys.stderr, flush=True)))
+    if args.json:
+        print(json.dumps(res, indent=1, default=float))
+    else:
+        print(res["verdict"])
+        print(f"figures: {Path(args.out) / 'scale.json'}, plot: {Path(args.out) / 'scale.png'}")
+    return 0
+
+
 def cmd_simulate(args) -> int:
     from cliquewise.simulate import simulate
 
@@ -340,6 +365,16 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--png", metavar="FILE", help="bar chart file (default RUN_DIR/profile.png)")
     r.add_argument("--no-png", action="store_true", help="no chart")
     r.set_defaults(func=cmd_profile)
+
+    r = sub.add_parser("scale", help="simulate exports of growing size, run each, fit the cost's slope against edges")
+    r.add_argument("--out", required=True, metavar="DIR", help="where the exports, runs, scale.json and scale.png go")
+    r.add_argument("--sizes", default="1e5,1e6,1e7", metavar="N,N,...", help="edge counts (default 1e5,1e6,1e7)")
+    r.add_argument("--seed", type=int, default=1)
+    r.add_argument("--levels", metavar="all|N|LIST", help="candidate levels, as for run (default all)")
+    r.add_argument("--max-slope", type=float, default=1.10, help="slope still called about linear (default 1.10)")
+    r.add_argument("--json", action="store_true", help="print scale.json")
+    _add_engine(r)
+    r.set_defaults(func=cmd_scale)
 
     r = sub.add_parser("simulate", help="write an invented export with planted groups")
     r.add_argument("--out", required=True, metavar="DIR")
