@@ -32,6 +32,41 @@ def params_from(settings) -> dict:
     return {}
 
 
+MEMBER_ROWS_PER_GROUP = 1 << 21
+
+
+def _write_members(path, ptr: np.ndarray, members: np.ndarray, order: np.ndarray, labels: pa.Array) -> int:
+    """Write ``members.parquet`` sorted by (clique_id, node_id), one row group at a time.
+
+    Candidate ``order[i]`` becomes clique ``i``; its members are stored ascending,
+    so the table is the member slices concatenated in clique order. Memory stays
+    proportional to one row group, not to the number of member rows.
+    """
+    schema = pa.schema([("clique_id", pa.int64()), ("node_id", pa.int64()), ("label", labels.type)])
+    size = np.diff(ptr)
+    sizes_o = size[order]
+    ends = np.cumsum(sizes_o)
+    rows = int(ends[-1]) if len(ends) else 0
+    with pq.ParquetWriter(path, schema, compression="zstd") as writer:
+        i = 0
+        while i < len(order):
+            j = int(np.searchsorted(ends, (ends[i - 1] if i else 0) + MEMBER_ROWS_PER_GROUP, side="right"))
+            j = max(j, i + 1)
+            sz = sizes_o[i:j]
+            starts = ptr[order[i:j]]
+            first = np.cumsum(sz) - sz  # where each clique's rows start in this chunk
+            idx = np.arange(int(sz.sum()), dtype=np.int64) + np.repeat(starts - first, sz)
+            node = np.asarray(members[idx], np.int64)
+            cid = np.repeat(np.arange(i, j, dtype=np.int64), sz)
+            writer.write_table(pa.table({"clique_id": cid, "node_id": node, "label": labels.take(pa.array(node))},
+                                        schema=schema))
+            i = j
+        if rows == 0:
+            writer.write_table(pa.table({"clique_id": np.zeros(0, np.int64), "node_id": np.zeros(0, np.int64),
+                                         "label": labels.take(pa.array(np.zeros(0, np.int64)))}, schema=schema))
+    return rows
+
+
 def run(ctx: StageContext) -> dict:
     ing, spl = ctx.input_dir("ingest"), ctx.input_dir("split")
     enu, fit = ctx.input_dir("enumerate"), ctx.input_dir("fit")
@@ -59,8 +94,6 @@ def run(ctx: StageContext) -> dict:
         expected = mu * P
         total = float(expected.sum())
         order = np.lexsort((np.arange(len(mu)), -expected))  # strongest first, stable
-        rank = np.empty_like(order)
-        rank[order] = np.arange(len(order))
         pq.write_table(pa.table({
             "clique_id": pa.array(np.arange(len(mu), dtype=np.int64)),
             "size": pa.array(size[order].astype(np.int64)),
@@ -70,16 +103,9 @@ def run(ctx: StageContext) -> dict:
             "level_min": pa.array(levels[lmin[order]] if len(levels) else np.zeros(len(mu))),
             "level_max": pa.array(levels[lmax[order]] if len(levels) else np.zeros(len(mu))),
         }), out / "cliques.parquet", compression="zstd")
-    with ctx.substep("members"):
-        cand_of_row = np.repeat(np.arange(len(size), dtype=np.int64), size)
-        cid = rank[cand_of_row]
-        o = np.lexsort((members, cid))
-        mem_nodes = members[o].astype(np.int64)
-        pq.write_table(pa.table({
-            "clique_id": pa.array(cid[o]),
-            "node_id": pa.array(mem_nodes),
-            "label": labels.take(pa.array(mem_nodes)),
-        }), out / "members.parquet", compression="zstd", row_group_size=1 << 20)
+    with ctx.substep("members") as step:
+        rows = _write_members(out / "members.parquet", ptr, members, order, labels)
+        step.count(rows=rows)
     ing_report = read_json(ing / "report.json")
     fit_report = read_json(fit / "report.json")
     timings = {}
