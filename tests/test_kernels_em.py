@@ -443,3 +443,22 @@ def test_int32_incidence_gives_the_same_bits():
     assert l64 == l32 and np.array_equal(a64, a32)
     # and both agree with the scipy twin
     np.testing.assert_allclose(a64 - P, em.em_step_reference(ptr, cand, y, mu, P)[2], rtol=1e-12, atol=1e-12)
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.lists(st.tuples(st.floats(0, 10), st.floats(0, 10), st.floats(0, 10)), min_size=1, max_size=30),
+       st.floats(-20.0, -1.0), st.floats(0.0, 1e-3))
+def test_squarem_vector_kernels_equal_numpy_array_arithmetic(rows, alpha, min_ratio):
+    # reference: the same formulas on numpy arrays (temporaries, vectorised)
+    from cliquewise.kernels.em import squarem_norms, squarem_point
+
+    x, x1, x2 = (np.array(c, dtype=np.float64) for c in zip(*rows))
+    r = x1 - x
+    v = x2 - 2.0 * x1 + x
+    sr, sv = squarem_norms(x, x1, x2)
+    assert sr == pytest.approx(float(r @ r), rel=1e-12, abs=1e-300)
+    assert sv == pytest.approx(float(v @ v), rel=1e-12, abs=1e-300)
+    want = x - (2.0 * alpha) * r + (alpha * alpha) * v
+    bad = ~(want > 0.0)
+    want[bad] = min_ratio * x[bad]
+    np.testing.assert_array_equal(squarem_point(x, x1, x2, alpha, min_ratio), want)

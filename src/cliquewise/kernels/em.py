@@ -18,7 +18,9 @@ What lives here
 
 - numba kernels: :func:`em_partial` (one fused sweep over a partition of the
   edges, the "map" of a distributed EM step), :func:`em_update`,
-  :func:`loglik_partial`, :func:`penalty`, :func:`loglik`, :func:`loglik_constant`.
+  :func:`loglik_partial`, :func:`penalty`, :func:`loglik`, :func:`loglik_constant`,
+  and SQUAREM's vector arithmetic without temporaries (:func:`squarem_norms`,
+  :func:`squarem_point`).
 - :func:`fit_em`, a pure-numpy driver (plain EM or SQUAREM) around any callable
   ``step(mu) -> (mu_next, loglik_at_mu)``, so the caller may implement the step as
   a map-reduce; :func:`fit_local` wires it to the kernels for in-memory problems;
@@ -273,12 +275,32 @@ def loglik_constant(y):
 
 
 @numba.njit(nogil=True, cache=True)
-def _sqnorm(x):
-    """Sequential sum of squares (deterministic, unlike BLAS ``dot``)."""
-    total = 0.0
-    for i in range(x.shape[0]):
-        total += x[i] * x[i]
-    return total
+def squarem_norms(x, x1, x2):
+    """``(||r||^2, ||v||^2)`` with ``r = x1 - x`` and ``v = x2 - 2 x1 + x``, in one
+    sequential pass and without temporaries (the same sums as on the arrays)."""
+    sr = 0.0
+    sv = 0.0
+    for k in range(x.shape[0]):
+        r = x1[k] - x[k]
+        v = x2[k] - 2.0 * x1[k] + x[k]
+        sr += r * r
+        sv += v * v
+    return sr, sv
+
+
+@numba.njit(nogil=True, cache=True)
+def squarem_point(x, x1, x2, alpha, min_ratio):
+    """The extrapolated point ``x - 2 alpha r + alpha^2 v``, projected: a coordinate
+    that is not positive (or NaN) becomes ``min_ratio * x`` (see :func:`fit_em`)."""
+    out = np.empty(x.shape[0], np.float64)
+    a2 = 2.0 * alpha
+    aa = alpha * alpha
+    for k in range(x.shape[0]):
+        r = x1[k] - x[k]
+        v = x2[k] - 2.0 * x1[k] + x[k]
+        p = x[k] - a2 * r + aa * v
+        out[k] = p if p > 0.0 else min_ratio * x[k]
+    return out
 
 
 # --------------------------------------------------------------------------
@@ -419,17 +441,12 @@ def fit_em(
             continue
         x2, _ = (step.without_loglik(x1) if hasattr(step, "without_loglik") else step(x1))
         n_evals += 1
-        r = x1 - x
-        v = x2 - 2.0 * x1 + x
-        sv = _sqnorm(v)
-        alpha = -math.sqrt(_sqnorm(r) / sv) if sv > 0.0 else -1.0
+        sr, sv = squarem_norms(x, x1, x2)
+        alpha = -math.sqrt(sr / sv) if sv > 0.0 else -1.0
         if not alpha < -1.0:  # clamp to <= -1; also catches nan
             x = x2  # alpha = -1: the extrapolated point is x2 itself
             continue
-        xp = x - (2.0 * alpha) * r + (alpha * alpha) * v
-        bad = ~(xp > 0.0)  # catches nan too
-        if bad.any():
-            xp[bad] = min_ratio * x[bad]
+        xp = squarem_point(x, x1, x2, alpha, min_ratio)  # projected; nan counts as not positive
         x3, lp = step(xp)
         n_evals += 1
         x = x3 if float(lp) >= l0 else x2  # safeguard (False for nan)

@@ -36,7 +36,7 @@ edge's first candidate in that order: edges grouped by it split the tree into
 independent subtrees, which is how the fit cuts it into parts),
 :func:`build_tree` (from an edge -> candidate CSR and a set of edges),
 :func:`first_seen_order` (candidate numbering by first use, for locality),
-:func:`tree_sweep` (one EM sweep), :func:`tree_loglik`, :func:`tree_unsupported`
+:func:`tree_sweep` (one EM sweep: :func:`tree_down`, numpy, :func:`tree_up`), :func:`tree_unsupported`
 (ends left with no positive rate after pruning), :func:`check_tree`, and the plain
 Python twins :func:`build_tree_reference` and :func:`tree_sweep_reference`.
 """
@@ -55,9 +55,10 @@ __all__ = [
     "row_tops",
     "check_tree",
     "first_seen_order",
-    "tree_loglik",
+    "tree_down",
     "tree_sweep",
     "tree_sweep_reference",
+    "tree_up",
     "tree_unsupported",
 ]
 
@@ -348,57 +349,36 @@ def check_tree(cand, depth, end, ey, width):
 
 
 @numba.njit(nogil=True, cache=True)
-def tree_sweep(cand, depth, end, ey, mu, acc, want_loglik):
-    """One EM sweep over a tree: ``acc[k] += sum over its edges of y / lambda``.
+def _max_depth(depth):
+    m = 0
+    for t in range(depth.shape[0]):
+        if depth[t] > m:
+            m = depth[t]
+    return m
 
-    Parameters
-    ----------
-    cand, depth, end, ey : arrays
-        A tree (see the module docstring), ``cand`` relative to ``mu[0]``.
-    mu : float64 array
-        The slice of intensities the tree's ``cand`` index (``mu[lo:hi+1]``).
-    acc : float64 array, same length as ``mu``
-        Accumulator, updated in place (not zeroed here).
-    want_loglik : bool
-        Also return ``sum Y log lambda`` over the end nodes (else 0.0).
 
-    Returns
-    -------
-    float
-        ``sum Y log(lambda)``; ``-inf`` if an end with ``Y > 0`` has ``lambda = 0``
-        (it adds nothing to ``acc``). The arrays are not checked here: call
-        :func:`check_tree` once when a tree is loaded.
-    """
+@numba.njit(nogil=True, cache=True)
+def tree_down(cand, depth, end, mu, lam_end):
+    """Down pass: ``lam_end[q]`` = the rate of end node ``end[q]`` (sum of ``mu`` on its path)."""
     n = cand.shape[0]
     n_end = end.shape[0]
-    if n == 0:
-        return 0.0
-    max_depth = 0
-    for t in range(n):
-        if depth[t] > max_depth:
-            max_depth = depth[t]
-    stack = np.zeros(max_depth + 2, np.float64)
-    ratio = np.empty(n_end, np.float64)
-    total = 0.0
+    stack = np.zeros(_max_depth(depth) + 2, np.float64)
     q = 0
     for t in range(n):
         d = depth[t]
         lam = stack[d] + mu[cand[t]]
         stack[d + 1] = lam
         if q < n_end and end[q] == t:
-            w = ey[q]
-            if lam > 0.0:
-                ratio[q] = w / lam
-                if want_loglik and w > 0.0:
-                    total += w * math.log(lam)
-            else:
-                ratio[q] = 0.0
-                if w > 0.0:
-                    total = -np.inf
+            lam_end[q] = lam
             q += 1
-    for i in range(stack.shape[0]):
-        stack[i] = 0.0
-    q = n_end - 1
+
+
+@numba.njit(nogil=True, cache=True)
+def tree_up(cand, depth, end, ratio, acc):
+    """Up pass: ``acc[k] +=`` the sum of ``ratio`` over the end nodes below each node of ``k``."""
+    n = cand.shape[0]
+    stack = np.zeros(_max_depth(depth) + 2, np.float64)
+    q = end.shape[0] - 1
     for t in range(n - 1, -1, -1):
         d = depth[t]
         tot = stack[d + 1]
@@ -408,30 +388,52 @@ def tree_sweep(cand, depth, end, ey, mu, acc, want_loglik):
             q -= 1
         stack[d] += tot
         acc[cand[t]] += tot
-    return total
 
 
-@numba.njit(nogil=True, cache=True)
-def tree_loglik(cand, depth, end, ey, mu):
-    """``sum Y log(lambda)`` over a tree's end nodes (``-inf`` as in :func:`tree_sweep`)."""
-    n = cand.shape[0]
+def tree_sweep(cand, depth, end, ey, mu, acc, want_loglik=True):
+    """One EM sweep over a tree: ``acc[k] += sum over its edges of y / lambda``.
+
+    The down pass (:func:`tree_down`) gives each end node its rate; the ratios
+    ``Y / lambda`` and the log-likelihood are computed by numpy on those arrays
+    (vectorised logarithms; numpy releases the GIL, so parts still run side by
+    side); the up pass (:func:`tree_up`) adds the ratios into ``acc``.
+
+    Parameters
+    ----------
+    cand, depth, end, ey : arrays
+        A tree (see the module docstring), ``cand`` relative to ``mu[0]``.
+    mu : float64 array
+        The intensities the tree's ``cand`` index.
+    acc : float64 array, same length as ``mu``
+        Accumulator, updated in place (not zeroed here).
+    want_loglik : bool
+        Also return ``sum Y log lambda`` over the end nodes (else 0.0).
+
+    Returns
+    -------
+    float
+        ``sum Y log(lambda)`` (numpy's pairwise summation: the same on every run);
+        ``-inf`` if an end with ``Y > 0`` has ``lambda = 0`` (it adds nothing to
+        ``acc``). The arrays are not checked here: call :func:`check_tree` once
+        when a tree is loaded.
+    """
     n_end = end.shape[0]
-    max_depth = 0
-    for t in range(n):
-        if depth[t] > max_depth:
-            max_depth = depth[t]
-    stack = np.zeros(max_depth + 2, np.float64)
-    total = 0.0
-    q = 0
-    for t in range(n):
-        d = depth[t]
-        lam = stack[d] + mu[cand[t]]
-        stack[d + 1] = lam
-        if q < n_end and end[q] == t:
-            w = ey[q]
-            if w > 0.0:
-                total = total + w * math.log(lam) if lam > 0.0 else -np.inf
-            q += 1
+    if cand.shape[0] == 0 or n_end == 0:
+        return 0.0
+    lam = np.empty(n_end, np.float64)
+    tree_down(cand, depth, end, mu, lam)
+    if lam.min() > 0.0:
+        ratio = ey / lam
+        total = float(np.sum(ey * np.log(lam))) if want_loglik else 0.0
+    else:
+        pos = lam > 0.0
+        ratio = np.zeros(n_end, np.float64)
+        np.divide(ey, lam, out=ratio, where=pos)
+        if np.any(~pos & (ey > 0.0)):
+            total = -np.inf
+        else:
+            total = float(np.sum(ey[pos] * np.log(lam[pos]))) if want_loglik else 0.0
+    tree_up(cand, depth, end, ratio, acc)
     return total
 
 
@@ -442,10 +444,7 @@ def tree_unsupported(cand, depth, end, mu_kept, mu_full):
     ``cand``; returns them in end order (may repeat)."""
     n = cand.shape[0]
     n_end = end.shape[0]
-    max_depth = 0
-    for t in range(n):
-        if depth[t] > max_depth:
-            max_depth = depth[t]
+    max_depth = _max_depth(depth)
     lam = np.zeros(max_depth + 2, np.float64)
     best = np.full(max_depth + 2, -1, np.int64)
     best_mu = np.full(max_depth + 2, -1.0, np.float64)

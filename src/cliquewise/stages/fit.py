@@ -27,7 +27,7 @@ import shutil
 
 import numpy as np
 
-from cliquewise.kernels.em import fit_em, loglik_constant, penalty
+from cliquewise.kernels.em import em_update, fit_em, loglik_constant, penalty
 from cliquewise.parts import fitting as parts
 from cliquewise.stage import StageContext
 from cliquewise.store import RunStore, load_npy, read_json, save_npy, write_json_atomic
@@ -71,13 +71,12 @@ class DistributedStep:
     def __call__(self, mu):
         self.evals += 1
         acc, total = self.partial(mu)
-        new = np.where(mu == 0.0, 0.0, mu * acc / self.P)
-        return new, total - penalty(mu, self.P)
+        return em_update(mu, acc, self.P), total - penalty(mu, self.P)
 
     def without_loglik(self, mu):
         self.evals += 1
         acc, _ = self.partial(mu, want_loglik=False)
-        return np.where(mu == 0.0, 0.0, mu * acc / self.P), float("nan")
+        return em_update(mu, acc, self.P), float("nan")
 
     def loglik(self, mu) -> float:
         _, total = self.partial(mu)
