@@ -9,7 +9,7 @@ identical, value for value, to those of one uninterrupted run of the same job
 The kill points cover every stage: inside ingest's label scan, map and aggregate
 units; inside split; inside enumerate (graph build, while edge-block units run,
 between a unit's files and its checkpoint marker, after a unit's checkpoint, after
-collecting); inside fit (edge classes, in the middle of an EM step, between EM
+collecting); inside fit (prefix trees, in the middle of an EM step, between EM
 checkpoints of both phases, between a checkpoint file and its marker); inside
 results; between a stage folder and its manifest; and between stages.
 
