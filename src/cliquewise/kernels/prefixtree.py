@@ -19,14 +19,15 @@ One EM sweep on the tree is exact and touches each node once each way:
 The nodes are stored in preorder with their depth, so a parent is always the
 last node seen one level up: a small stack indexed by depth replaces parent
 pointers, and the only scattered memory accesses are ``mu`` and ``acc``. On
-simulated exports the tree has about 0.55 nodes per incidence (measured in
+simulated exports the tree has about 0.56 nodes per incidence (measured in
 ``benchmarks/fit.py``), so a sweep does about half the gathers and scatters of
 the flat edge -> candidate sweep.
 
 Layout of a tree (one part of the edges):
 
-``cand``   candidate of each node (preorder), an unsigned or signed integer array,
-           relative to a base id ``lo`` (so ``mu[lo:hi+1]`` is the slice it needs);
+``cand``   candidate of each node (preorder), an unsigned or signed integer array
+           of ids local to the tree (the fit uses a part's own block of
+           candidates, then its stragglers: see ``parts/fitting.py``);
 ``depth``  depth of each node (roots 0), ``uint16`` or ``int32``;
 ``end``    node index of each end node, increasing (int64);
 ``ey``     summed weight of the edges ending there (float64).
