@@ -8,7 +8,7 @@ import math
 
 import numpy as np
 import pytest
-from hypothesis import given, settings, strategies as st
+from hypothesis import assume, given, settings, strategies as st
 
 from cliquewise.analysis.scale import loglog_slope, slopes, verdict
 
@@ -18,9 +18,10 @@ from cliquewise.analysis.scale import loglog_slope, slopes, verdict
 def test_slope_equals_numpy_polyfit(points):
     x = np.array([p[0] for p in points])
     y = np.array([p[1] for p in points])
-    if np.ptp(np.log(x)) < 1e-6:
-        assert math.isnan(loglog_slope(x, y))
+    if np.all(x == x[0]):
+        assert math.isnan(loglog_slope(x, y))  # no spread in x: no slope
         return
+    assume(np.ptp(np.log(x)) > 1e-3)  # nearly equal sizes: the fit is ill-conditioned for both
     want = np.polyfit(np.log(x), np.log(y), 1)[0]  # numpy as reference
     assert loglog_slope(x, y) == pytest.approx(want, rel=1e-7, abs=1e-9)
 
