@@ -20,6 +20,14 @@ import pytest
 
 os.environ.setdefault("NUMBA_CACHE_DIR", str(Path(__file__).resolve().parents[1] / ".venv" / "numba-cache"))
 
+# In CI (CI=true) the property tests draw the same examples every run, so a run
+# fails only on a real change; locally they explore new examples each time.
+from hypothesis import settings as _hyp_settings  # noqa: E402
+
+_hyp_settings.register_profile("ci", derandomize=True, print_blob=True)
+if os.environ.get("CI"):
+    _hyp_settings.load_profile("ci")
+
 
 @pytest.fixture(scope="session")
 def engine():
