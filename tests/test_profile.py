@@ -46,6 +46,10 @@ def test_profile_rows_are_the_manifest_numbers(finished_run):
     assert fit_steps.index("trees") < fit_steps.index("em") < fit_steps.index("prune")
     em = next(r for r in rows if r["stage"] == "fit" and r["step"] == "em")
     assert em["counts"]["evaluations"] >= em["counts"]["iterations"] >= 1
+    # an EM evaluation sweeps every incidence once
+    assert em["throughput_unit"] == "incidences/s"
+    assert em["throughput"] == pytest.approx(em["counts"]["evaluations"] * em["counts"]["incidences"]
+                                             / em["wall_seconds"])
     # throughput is work over wall time
     ing = rows[0]
     assert ing["throughput"] == pytest.approx(ing["counts"]["rows_read"] / ing["wall_seconds"])

@@ -26,12 +26,14 @@ STEP_KEYS = ("rows", "edges", "incidences", "evaluations", "candidates", "pairs"
 
 
 def _throughput(counts: dict, keys, wall: float):
+    if wall <= 0:
+        return None, ""
+    if counts.get("evaluations") and counts.get("incidences"):
+        # an EM evaluation sweeps every incidence once
+        return counts["evaluations"] * counts["incidences"] / wall, "incidences/s"
     for key in keys:
         value = counts.get(key)
-        if isinstance(value, (int, float)) and value and wall > 0:
-            if key == "evaluations" and counts.get("incidences"):
-                # an EM evaluation sweeps every incidence once
-                return value * counts["incidences"] / wall, "incidences/s"
+        if isinstance(value, (int, float)) and value:
             return value / wall, f"{key}/s"
     return None, ""
 

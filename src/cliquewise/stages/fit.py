@@ -153,7 +153,8 @@ def run(ctx: StageContext) -> dict:
     with ctx.substep("refit") as sub:
         evals0 = step.evals
         refit = _fit_phase(ctx, step, mu, p, "kept", work) if pruned else full
-        sub.count(iterations=refit.iterations if pruned else 0, evaluations=step.evals - evals0)
+        sub.count(iterations=refit.iterations if pruned else 0, evaluations=step.evals - evals0,
+                  incidences=total_inc)
     mu = refit.mu[new_id]  # back to the candidates' own numbering
     mu_full = mu_full[new_id]
     y = load_npy(enum_dir / "weight.npy", mmap=True)
