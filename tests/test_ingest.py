@@ -165,3 +165,47 @@ def test_many_partitions_and_buckets(tmp_path, monkeypatch):
         outs.append(read_edges(tmp_path / name))
     assert len(list((tmp_path / "small" / "ingest" / "edges").glob("*.parquet"))) > 1
     pd.testing.assert_frame_equal(outs[0], outs[1])
+
+
+@pytest.mark.parametrize("labels", ["int", "str"])
+@pytest.mark.parametrize("weighted", [True, False])
+def test_scratch_files_and_memory_give_the_same_store(tmp_path, monkeypatch, labels, weighted):
+    # rows_in_memory=0 sends the mapped rows through scratch files; the default keeps
+    # them in memory. Both must equal pandas groupby on the ordered pairs (reference:
+    # pandas), with integer labels (dense-range ids) and text labels (label table).
+    _stop_after_ingest(monkeypatch)
+    rng = np.random.default_rng(8)
+    n = 30000
+    src, dst = rng.integers(0, 900, n), rng.integers(0, 900, n)
+    df = pd.DataFrame({"source": src, "target": dst, "weight": rng.integers(1, 9, n).astype(float)})
+    if labels == "str":
+        df["source"] = "p" + df.source.astype(str)
+        df["target"] = "p" + df.target.astype(str)
+    if not weighted:
+        df = df.drop(columns="weight")
+    for i in range(3):
+        pq.write_table(pa.Table.from_pandas(df.iloc[i * 10000:(i + 1) * 10000]), tmp_path / f"p{i}.parquet",
+                       row_group_size=2500)
+    from cliquewise.config import Settings
+    from cliquewise.pipeline import run_pipeline
+
+    outs = {}
+    for name, rows_in_memory in {"files": 0, "memory": 10**7}.items():
+        s = Settings()
+        s.input.edges = str(tmp_path / "p*.parquet")
+        s.input.weight = "weight" if weighted else ""
+        s.input.rows_per_task, s.input.rows_per_bucket, s.input.rows_in_memory = 5000, 4000, rows_in_memory
+        s.run_dir = str(tmp_path / name)
+        run_pipeline(s, progress=False)
+        outs[name] = read_edges(tmp_path / name)
+    pd.testing.assert_frame_equal(outs["files"], outs["memory"])
+    ref = df[df.source != df.target].copy()
+    a, b = ref.source.to_numpy(), ref.target.to_numpy()
+    ref["a"], ref["b"] = np.where(a < b, a, b), np.where(a < b, b, a)
+    if not weighted:
+        ref["weight"] = 1.0
+    want = ref.groupby(["a", "b"]).weight.sum().reset_index()
+    got = outs["memory"][["a", "b", "weight"]].sort_values(["a", "b"]).reset_index(drop=True)
+    np.testing.assert_array_equal(got.a.to_numpy(), want.a.to_numpy())
+    np.testing.assert_array_equal(got.b.to_numpy(), want.b.to_numpy())
+    np.testing.assert_array_equal(got.weight.to_numpy(), want.weight.to_numpy())

@@ -156,3 +156,20 @@ def test_weight_flags_match_numpy(w):
     expected = (int(np.isnan(w).sum()), int(np.isinf(w).sum()),
                 int((fin & (w < 0)).sum()), int((w == 0).sum()))
     assert ag.weight_flags(w) == expected
+
+
+@settings(max_examples=40, deadline=None)
+@given(data=edge_rows(any_weights, n_max=8), how=st.sampled_from([0, 1, 2]))
+def test_unit_weights_equal_explicit_ones(data, how):
+    # an empty weight array means every row weighs 1: the result equals the one
+    # with an explicit column of ones, and pandas groupby size/max/min on it
+    n, rows, dup_idx = data
+    a, b, w = as_arrays(rows, dup_idx)
+    u, v, _, _ = ag.order_pairs(a, b, w)
+    ones = np.ones(len(u))
+    eu, ev, ew = ag.aggregate_pairs(u.astype(np.int32), v.astype(np.int32), np.zeros(0), 0, n, how)
+    pu, pv, pw = pandas_groupby(u, v, ones, how)  # reference: pandas groupby
+    np.testing.assert_array_equal(eu, pu)
+    np.testing.assert_array_equal(ev, pv)
+    np.testing.assert_array_equal(ew, pw)
+    np.testing.assert_array_equal(ew, ag.aggregate_pairs_reference(u, v, np.zeros(0), how)[2])

@@ -143,8 +143,12 @@ def _cli(args, env_extra=None, cwd=None):
                           capture_output=True, text=True, env=env, cwd=cwd, timeout=300)
 
 
-@pytest.mark.parametrize("point", ["unit:map-t00001", "unit:agg-00001", "before-manifest:ingest"])
-def test_kill9_during_ingest_then_resume_is_identical(tmp_path, point):
+# rows_in_memory = 0: mapped rows go through checkpointed scratch files; the
+# default keeps them in memory (no map checkpoints, map-counts marks the map done)
+@pytest.mark.parametrize("point,in_memory", [("unit:map-t00001", 0), ("unit:agg-00001", 0),
+                                             ("unit:map-counts", 1000000), ("unit:agg-00001", 1000000),
+                                             ("before-manifest:ingest", 1000000)])
+def test_kill9_during_ingest_then_resume_is_identical(tmp_path, point, in_memory):
     rng = np.random.default_rng(4)
     n = 60_000
     df = pd.DataFrame({"source": rng.integers(0, 3000, n), "target": rng.integers(0, 3000, n),
@@ -152,7 +156,8 @@ def test_kill9_during_ingest_then_resume_is_identical(tmp_path, point):
     for i in range(3):
         df.iloc[i * 20000:(i + 1) * 20000].to_parquet(tmp_path / f"p{i}.parquet")
     pipe = tmp_path / "p.toml"
-    pipe.write_text('[input]\nedges = "p*.parquet"\nrows_per_task = 20000\nrows_per_bucket = 20000\n')
+    pipe.write_text('[input]\nedges = "p*.parquet"\nrows_per_task = 20000\nrows_per_bucket = 20000\n'
+                    f'rows_in_memory = {in_memory}\n')
     ref = _cli(["run", pipe, "--run-dir", tmp_path / "ref"])
     assert ref.returncode == 0, ref.stderr
     crashed = _cli(["run", pipe, "--run-dir", tmp_path / "crash"], {"CLIQUEWISE_FAULT": point})

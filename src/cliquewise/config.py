@@ -60,6 +60,7 @@ class InputSettings:
     on_invalid: str = "error"
     rows_per_task: int = 4_000_000
     rows_per_bucket: int = 2_000_000
+    rows_in_memory: int = 32_000_000
 
 
 @dataclass
@@ -128,6 +129,8 @@ class Settings:
         for name in ("rows_per_task", "rows_per_bucket"):
             if int(getattr(i, name)) < 1:
                 raise ConfigError(f"input.{name} must be a positive number")
+        if int(i.rows_in_memory) < 0:
+            raise ConfigError("input.rows_in_memory must be 0 (always use scratch files) or more")
         lv = self.candidates.levels
         if not (lv == "all" or (isinstance(lv, int) and not isinstance(lv, bool) and lv >= 1)
                 or (isinstance(lv, list) and lv and all(isinstance(x, (int, float)) for x in lv))):

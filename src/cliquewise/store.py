@@ -15,14 +15,15 @@ then writes ``manifest.json`` atomically. The manifest is the completion marker:
 stage folder without a valid manifest is never used.
 
 A manifest records the parameters and their hash, upstream identities, input
-fingerprints, every output file with its size and BLAKE2b checksum, wall and CPU
+fingerprints, every output file with its size and CRC-32 checksum, wall and CPU
 seconds, peak RSS, and work counts. Its ``identity`` hashes the output checksums,
 so a stage recomputed to the same bytes (say with other partition sizes) keeps its
 downstream valid, while any change in what it wrote invalidates everything below.
 
 Long stages checkpoint inside: a *unit* (one work item) writes its files into the
 work folder and then a small JSON marker with their checksums; on resume, units
-whose markers verify are reused. No pickle anywhere: Parquet, JSON and ``.npy``
+whose markers verify are reused. Unit markers are not fsynced: a marker that outlives
+its files (power loss) fails the size or checksum test and the unit is redone. No pickle anywhere: Parquet, JSON and ``.npy``
 (loaded with ``allow_pickle=False``).
 """
 
@@ -33,6 +34,7 @@ import json
 import os
 import shutil
 import time
+import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable
@@ -73,25 +75,38 @@ def digest(text: str | bytes) -> str:
 
 
 def file_checksum(path: Path, chunk: int = 1 << 22) -> str:
-    """BLAKE2b checksum of a file's bytes."""
-    h = hashlib.blake2b(digest_size=16)
-    with open(path, "rb") as fh:
+    """CRC-32 of a file's bytes, as ``"crc32:xxxxxxxx"``.
+
+    The checksum guards against truncated, torn or accidentally altered files
+    (the error-detecting code of zip, gzip and PNG), not against deliberate
+    tampering: whoever can rewrite a file can rewrite its manifest too. It runs
+    at about 6 GB/s here against about 1.2 GB/s for BLAKE2b, and every unit
+    and stage output is checksummed once when written and again on resume.
+    Manifests written with another algorithm simply fail to match, so those
+    outputs are recomputed, never trusted.
+    """
+    crc = 0
+    with open(path, "rb", buffering=0) as fh:
         while True:
             block = fh.read(chunk)
             if not block:
                 break
-            h.update(block)
-    return h.hexdigest()
+            crc = zlib.crc32(block, crc)
+    return f"crc32:{crc:08x}"
 
 
-def write_json_atomic(path: Path, obj: Any) -> None:
-    """Write JSON to ``path`` through a temporary file and an atomic rename."""
+def write_json_atomic(path: Path, obj: Any, durable: bool = True) -> None:
+    """Write JSON to ``path`` through a temporary file and an atomic rename.
+
+    ``durable=False`` skips the fsync (unit markers, whose files are verified anyway).
+    """
     path = Path(path)
     tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
     with open(tmp, "w", encoding="utf-8") as fh:
         json.dump(obj, fh, indent=1, sort_keys=True, default=_json_default)
-        fh.flush()
-        os.fsync(fh.fileno())
+        if durable:
+            fh.flush()
+            os.fsync(fh.fileno())
     os.replace(tmp, path)
 
 
@@ -315,7 +330,7 @@ class RunStore:
         for rel in files:
             p = work / rel
             info["files"][rel] = {"bytes": p.stat().st_size, "checksum": file_checksum(p)}
-        write_json_atomic(work / "units" / f"{unit}.json", info)
+        write_json_atomic(work / "units" / f"{unit}.json", info, durable=False)
         fault_point(f"unit:{unit}")
 
     @staticmethod

@@ -5,6 +5,7 @@
 - :func:`aggregate_pairs` merges repeated ``(u, v)`` keys of one bucket (all
   ``u`` in a node range ``[lo, hi)``) by sum, max or min: a stable counting
   sort on ``u`` (dense over the bucket's range, in two cache-friendly passes),
+  with unit weights when none are given (an event log: counts, no weight column),
   then a stable sort of ``v`` inside each row, then one merging scan. The output is sorted by
   ``(u, v)``. Sums add the duplicates of a key in their input order, so the
   result is deterministic; integer-valued weights are exact while the running
@@ -195,7 +196,11 @@ def _hash_dedupe(sv, sw, start, stop, how, table, dv, dw):
 
 @numba.njit(nogil=True, cache=True)
 def _coarse_pass(u, v, w, lo, span, shift):
-    """Stable counting sort of the rows into ranges of ``2**shift`` nodes of ``u``."""
+    """Stable counting sort of the rows into ranges of ``2**shift`` nodes of ``u``.
+
+    Returns the range pointers and the rows' offsets ``u - lo`` (in ``u``'s
+    dtype), ``v`` (in its dtype) and weights (empty when ``w`` is: unit weights).
+    """
     n = u.shape[0]
     n_coarse = ((span - 1) >> shift) + 1 if span > 0 else 0
     cptr = np.zeros(n_coarse + 1, dtype=np.int64)
@@ -207,16 +212,18 @@ def _coarse_pass(u, v, w, lo, span, shift):
     for c in range(n_coarse):
         cptr[c + 1] += cptr[c]
     fill = cptr[:-1].copy()
-    cu = np.empty(n, dtype=np.int64)
-    cv = np.empty(n, dtype=np.int64)
-    cw = np.empty(n, dtype=np.float64)
+    unit = w.shape[0] == 0
+    cu = np.empty(n, dtype=u.dtype)
+    cv = np.empty(n, dtype=v.dtype)
+    cw = np.empty(0 if unit else n, dtype=np.float64)
     for i in range(n):
         r = u[i] - lo
         c = r >> shift
         p = fill[c]
         cu[p] = r
         cv[p] = v[i]
-        cw[p] = w[i]
+        if not unit:
+            cw[p] = w[i]
         fill[c] = p + 1
     return cptr, cu, cv, cw
 
@@ -232,11 +239,13 @@ def aggregate_pairs(u, v, w, n_nodes_lo, n_nodes_hi, how=0):
 
     Parameters
     ----------
-    u, v : int64 arrays
+    u, v : integer arrays
         Keys (normally oriented by :func:`order_pairs`; any ``v`` is accepted).
+        Scratch copies keep their dtypes, so int32 keys halve the memory.
     w : float64 array
         Weights (validate with :func:`weight_flags` first: nan is not treated
-        specially).
+        specially), or an empty array: every row weighs 1 (an event log), and
+        no weight column is read or copied.
     n_nodes_lo, n_nodes_hi : int
         The bucket's node range; every ``u`` must lie in it. Memory and time are
         linear in ``len(u) + (hi - lo)``.
@@ -246,7 +255,8 @@ def aggregate_pairs(u, v, w, n_nodes_lo, n_nodes_hi, how=0):
 
     Returns
     -------
-    u, v : int64 arrays
+    u : int64 array
+    v : array of ``v``'s dtype
         Distinct keys, sorted by ``(u, v)``.
     w : float64 array
         Merged weights.
@@ -257,7 +267,7 @@ def aggregate_pairs(u, v, w, n_nodes_lo, n_nodes_hi, how=0):
         On mismatched lengths, a ``u`` outside the range, or an unknown ``how``.
     """
     n = u.shape[0]
-    if v.shape[0] != n or w.shape[0] != n:
+    if v.shape[0] != n or (w.shape[0] != n and w.shape[0] != 0):
         raise ValueError("u, v and w differ in length")
     if how < 0 or how > 2:
         raise ValueError("how must be 0 (sum), 1 (max) or 2 (min)")
@@ -269,6 +279,7 @@ def aggregate_pairs(u, v, w, n_nodes_lo, n_nodes_hi, how=0):
     while (span >> shift) > _COARSE:
         shift += 1
     cptr, cu, cv, cw = _coarse_pass(u, v, w, lo, span, shift)
+    unit = n > 0 and w.shape[0] == 0
     n_coarse = cptr.shape[0] - 1
     biggest = 0
     for c in range(n_coarse):
@@ -283,8 +294,12 @@ def aggregate_pairs(u, v, w, n_nodes_lo, n_nodes_hi, how=0):
     tv = np.empty(biggest, dtype=np.int64)
     tw = np.empty(biggest, dtype=np.float64)
     table = np.empty(0, dtype=np.int64)
-    # Output is compacted into cu/cv/cw: it never overtakes the range being read,
-    # which has been copied to sv/sw first.
+    # Output v (and weights) are compacted into cv (cw): they never overtake the
+    # range being read, which has been copied to sv/sw first. Output u and, with
+    # unit weights, output w get arrays of their own; np.empty does not touch
+    # memory, so only the m entries written cost pages.
+    ou = np.empty(n, dtype=np.int64)
+    ow = np.empty(n, dtype=np.float64) if unit else cw
     m = 0
     for c in range(n_coarse):
         start = cptr[c]
@@ -302,7 +317,7 @@ def aggregate_pairs(u, v, w, n_nodes_lo, n_nodes_hi, how=0):
             r = cu[i] - row0
             p = rfill[r]
             sv[p] = cv[i]
-            sw[p] = cw[i]
+            sw[p] = 1.0 if unit else cw[i]
             rfill[r] = p + 1
         for r in range(width):
             a = rptr[r]
@@ -314,9 +329,9 @@ def aggregate_pairs(u, v, w, n_nodes_lo, n_nodes_hi, how=0):
                 nd = _hash_dedupe(sv, sw, a, b, how, table, dv, dw)
                 _merge_sort(dv, dw, nd, tv, tw)
                 for k in range(nd):
-                    cu[m] = node
+                    ou[m] = node
                     cv[m] = dv[k]
-                    cw[m] = dw[k]
+                    ow[m] = dw[k]
                     m += 1
                 continue
             if b - a > 1:
@@ -329,11 +344,11 @@ def aggregate_pairs(u, v, w, n_nodes_lo, n_nodes_hi, how=0):
                 while i < b and sv[i] == key:
                     acc = _combine(acc, sw[i], how)
                     i += 1
-                cu[m] = node
+                ou[m] = node
                 cv[m] = key
-                cw[m] = acc
+                ow[m] = acc
                 m += 1
-    return cu[:m].copy(), cv[:m].copy(), cw[:m].copy()
+    return ou[:m], cv[:m], ow[:m]
 
 
 @numba.njit(nogil=True, cache=True)
@@ -383,6 +398,8 @@ def order_pairs_reference(a, b, w):
 
 def aggregate_pairs_reference(u, v, w, how=0):
     """Reference twin of :func:`aggregate_pairs`: a Python dict in input order."""
+    if len(w) == 0:  # unit weights
+        w = np.ones(len(u))
     merged: dict[tuple[int, int], float] = {}
     for a, b, x in zip(np.asarray(u).tolist(), np.asarray(v).tolist(),
                        np.asarray(w, dtype=np.float64).tolist()):

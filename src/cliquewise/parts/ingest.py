@@ -8,9 +8,11 @@ read as a stream of blocks. Each task is handled three times:
    label table, which defines the contiguous node ids (rank in sorted order).
 2. :func:`map_and_bucket` reads the whole task, checks weights, applies the time
    window, maps labels to ids, drops self-loops and zero weights, orders each pair
-   ``u < v`` and writes the rows grouped by node-range bucket to scratch ``.npy``.
-3. :func:`aggregate_bucket` reads one bucket's slices from every task's scratch
-   file, merges duplicate pairs and writes one edge-store partition.
+   ``u < v`` and groups the rows by node-range bucket, either kept in memory or
+   written to scratch ``.npy`` files (the stage chooses; see ``stages/ingest.py``).
+3. :func:`aggregate_bucket` takes one bucket's slices from every task
+   (:func:`memory_pieces` or :func:`scratch_pieces`), merges duplicate pairs and
+   writes one edge-store partition.
 
 Every row read is accounted for in the counts returned by step 2.
 """
@@ -377,8 +379,11 @@ def dense_range(tasks: list[ReadTask], cols: Columns, rows: int) -> tuple[int, i
 
 
 def map_and_bucket(task: ReadTask, cols: Columns, window, mapper: dict, n_buckets: int, on_invalid: str,
-                   scratch: Path) -> dict:
+                   scratch: Path | None) -> dict:
     """Map one task's rows to ordered id pairs, grouped by bucket, written to ``scratch``.
+
+    With ``scratch=None`` nothing is written: the result carries the arrays
+    (``u``, ``v``, ``off``, and ``w``, ``seen`` when they apply) under ``"arrays"``.
 
     ``mapper`` is ``{"kind": "table", "labels": ..., "label_kind": "int"|"str"}`` (ids are
     positions in the sorted label table) or ``{"kind": "range", "base": b, "size": n}``
@@ -459,17 +464,23 @@ def map_and_bucket(task: ReadTask, cols: Columns, window, mapper: dict, n_bucket
                 "cpu": time.thread_time() - t_cpu}
     u, v, w, offsets = _merge_chunks(chunks, n_buckets, id_like, weighted)
     del chunks
-    scratch.mkdir(parents=True, exist_ok=True)
-    files = []
-    arrays = [("u", u), ("v", v), ("off", offsets)] + ([("w", w)] if weighted else [])
+    arrays = {"u": u, "v": v, "off": offsets}
+    if weighted:
+        arrays["w"] = w
     if dense:
-        arrays.append(("seen", np.packbits(seen)))
-    for name, arr in arrays:
-        rel = f"{task.name}.{name}.npy"
-        save_npy(scratch / rel, arr)
-        files.append(rel)
-    return {"counts": counts, "examples": examples, "failed": False, "task": task.name, "path": task.path,
-            "files": files, "cpu": time.thread_time() - t_cpu}
+        arrays["seen"] = np.packbits(seen)
+    out = {"counts": counts, "examples": examples, "failed": False, "task": task.name, "path": task.path}
+    if scratch is None:  # the caller keeps the rows in memory
+        out["arrays"] = arrays
+    else:
+        scratch.mkdir(parents=True, exist_ok=True)
+        out["files"] = []
+        for name, arr in arrays.items():
+            rel = f"{task.name}.{name}.npy"
+            save_npy(scratch / rel, arr)
+            out["files"].append(rel)
+    out["cpu"] = time.thread_time() - t_cpu
+    return out
 
 
 _NO_WEIGHTS = np.empty(0, np.float64)
@@ -498,16 +509,22 @@ def _dense_ids(col, base: int) -> np.ndarray:
     return x - base if base else x
 
 
-def combine_seen(scratch: Path, task_names: list[str], size: int, base: int) -> tuple[np.ndarray, np.ndarray]:
+def combine_seen(bitmaps, size: int, base: int) -> tuple[np.ndarray, np.ndarray]:
     """OR the per-task label bitmaps: the sorted labels, and the rank of each slot (-1 if unused)."""
     acc = np.zeros((size + 7) // 8, np.uint8)
-    for name in task_names:
-        acc |= load_npy(scratch / f"{name}.seen.npy")
+    for bits in bitmaps:
+        acc |= bits
     seen = np.unpackbits(acc, count=size).astype(bool)
     slots = np.flatnonzero(seen)
     rank = np.full(size, -1, np.int64 if len(slots) >= 2**31 - 1 else np.int32)
     rank[slots] = np.arange(len(slots), dtype=rank.dtype)
     return slots + base, rank
+
+
+def scratch_bitmaps(scratch: Path, task_names: list[str]):
+    """The tasks' label bitmaps, one at a time, from their scratch files."""
+    for name in task_names:
+        yield load_npy(scratch / f"{name}.seen.npy")
 
 
 def _fmt_w(x, non_numeric, missing) -> str:
@@ -524,31 +541,47 @@ def _to_ids(col, labels: pa.Array, kind: str) -> np.ndarray:
 
 # -- aggregation ----------------------------------------------------------------
 
-def aggregate_bucket(b: int, lo: int, hi: int, scratch: Path, task_names: list[str], merge: str,
-                     out: Path, weighted: bool = True, rank_file: str | None = None) -> dict:
-    """Merge bucket ``b``'s rows from every task and write one edge-store partition.
-
-    With ``rank_file`` (the dense-label route) ids are renumbered through it after
-    merging; ranks are increasing, so the (u, v) order and ``u < v`` are kept.
-    """
-    t_cpu = time.thread_time()
-    us, vs, ws = [], [], []
+def scratch_pieces(scratch: Path, task_names: list[str], b: int, weighted: bool) -> list[tuple]:
+    """Bucket ``b``'s rows from every task's scratch files: ``(u, v, w)`` slices (memory-mapped)."""
+    pieces = []
     for name in task_names:
         off = load_npy(scratch / f"{name}.off.npy")
         s, e = int(off[b]), int(off[b + 1])
         if e > s:
-            us.append(load_npy(scratch / f"{name}.u.npy", mmap=True)[s:e])
-            vs.append(load_npy(scratch / f"{name}.v.npy", mmap=True)[s:e])
-            if weighted:
-                ws.append(np.asarray(load_npy(scratch / f"{name}.w.npy", mmap=True)[s:e]))
-    u = np.concatenate(us) if us else np.empty(0, np.int64)
-    v = np.concatenate(vs) if vs else np.empty(0, np.int64)
-    w = np.concatenate(ws) if ws else np.ones(len(u), np.float64)
+            pieces.append((load_npy(scratch / f"{name}.u.npy", mmap=True)[s:e],
+                           load_npy(scratch / f"{name}.v.npy", mmap=True)[s:e],
+                           load_npy(scratch / f"{name}.w.npy", mmap=True)[s:e] if weighted else None))
+    return pieces
+
+
+def memory_pieces(arrays: list[dict], b: int) -> list[tuple]:
+    """Bucket ``b``'s rows from tasks whose mapped arrays were kept in memory."""
+    pieces = []
+    for a in arrays:
+        s, e = int(a["off"][b]), int(a["off"][b + 1])
+        if e > s:
+            pieces.append((a["u"][s:e], a["v"][s:e], a["w"][s:e] if "w" in a else None))
+    return pieces
+
+
+def aggregate_bucket(b: int, lo: int, hi: int, pieces: list[tuple], merge: str, out: Path,
+                     weighted: bool = True, rank: np.ndarray | None = None) -> dict:
+    """Merge bucket ``b``'s rows from every task and write one edge-store partition.
+
+    ``pieces`` are the tasks' ``(u, v, w)`` slices for this bucket (see
+    :func:`scratch_pieces` and :func:`memory_pieces`). With ``rank`` (the
+    dense-label route) ids are renumbered through it after merging; ranks are
+    increasing, so the (u, v) order and ``u < v`` are kept.
+    """
+    t_cpu = time.thread_time()
+    u = np.concatenate([p[0] for p in pieces]) if pieces else np.empty(0, np.int64)
+    v = np.concatenate([p[1] for p in pieces]) if pieces else np.empty(0, np.int64)
+    # an empty weight array means every row counts 1
+    w = np.concatenate([p[2] for p in pieces]) if weighted and pieces else np.empty(0, np.float64)
     rows_in = len(u)
-    del us, vs, ws
+    del pieces
     u, v, w = aggregate_pairs(u, v, w, lo, hi, MERGE_CODES[merge])
-    if rank_file is not None:
-        rank = load_npy(Path(rank_file), mmap=True)
+    if rank is not None:
         u = np.asarray(rank[u], np.int64)
         v = np.asarray(rank[v], np.int64)
     table = pa.table({"u": pa.array(u, pa.int64()), "v": pa.array(v, pa.int64()), "weight": pa.array(w, pa.float64())})

@@ -7,7 +7,10 @@ Writes  ``ingest/edges/part-*.parquet``  columns ``u < v`` (int64 node ids), ``w
         ``ingest/report.json``           rows read = rows kept + dropped, by reason.
 
 Memory: a worker holds one read task (or one bucket) at a time; the driver holds
-only the label table and per-task counts, never rows.
+only the label table and per-task counts, never rows. The one exception is bounded:
+on the embedded thread pool and with an export of at most ``rows_in_memory`` rows
+(32M by default, about 8 to 16 bytes a row), the mapped rows stay in memory between
+map and aggregate instead of going through scratch files.
 """
 
 from __future__ import annotations
@@ -23,7 +26,7 @@ import pyarrow.parquet as pq
 
 from cliquewise.parts import ingest as parts
 from cliquewise.stage import InputError, StageContext
-from cliquewise.store import RunStore, save_npy, write_json_atomic
+from cliquewise.store import RunStore, load_npy, save_npy, write_json_atomic
 
 NAME = "ingest"
 UPSTREAM: list[str] = []
@@ -36,6 +39,7 @@ def params_from(settings) -> dict:
         "columns": {"source": i.source, "target": i.target, "weight": i.weight or None, "time": i.time or None},
         "since": i.since, "until": i.until, "merge": i.merge, "on_invalid": i.on_invalid,
         "rows_per_task": i.rows_per_task, "rows_per_bucket": i.rows_per_bucket,
+        "rows_in_memory": i.rows_in_memory,
     }
 
 
@@ -107,14 +111,33 @@ def run(ctx: StageContext, inputs: list[dict]) -> dict:
     n_buckets = min(n_buckets, max(1, space))
 
     # 2. map and bucket --------------------------------------------------------------
-    with ctx.substep("map") as step:
-        todo = [t for t in tasks if not RunStore.unit_done(work, f"map-{t.name}")]
-        done_info = {t.name: RunStore.unit_info(work, f"map-{t.name}") for t in tasks if t not in todo}
-        results = _guard(lambda: eng.map(_map_unit, todo, cols, window, mapper, n_buckets,
-                                         p["on_invalid"], str(work), desc="ingest: map"))
-        step.count(rows=sum(r["counts"]["rows_read"] for r in results), tasks=len(todo))
+    # On the embedded thread pool and below ``rows_in_memory`` rows, the mapped rows stay in
+    # memory until aggregation (no scratch files, no map checkpoints: a resumed run
+    # maps again unless every bucket is done). Otherwise each read task writes its
+    # rows to scratch files, checkpointed as a unit, and workers read them back.
+    weighted = bool(cols.weight)
+    in_memory = eng.client is None and total_rows <= p["rows_in_memory"]
+    bounds = parts_bounds(space, n_buckets)
+    jobs = [b for b in range(n_buckets) if not RunStore.unit_done(work, f"agg-{b:05d}")]
+    kept = None
+    if in_memory and not jobs and RunStore.unit_done(work, "map-counts"):
+        saved = RunStore.unit_info(work, "map-counts")
+        results, done_info = [], {"all": saved}
+    else:
+        with ctx.substep("map") as step:
+            if in_memory:
+                todo, done_info = tasks, {}
+            else:
+                todo = [t for t in tasks if not RunStore.unit_done(work, f"map-{t.name}")]
+                done_info = {t.name: RunStore.unit_info(work, f"map-{t.name}") for t in tasks if t not in todo}
+            results = _guard(lambda: eng.map(_map_unit, todo, cols, window, mapper, n_buckets,
+                                             p["on_invalid"], None if in_memory else str(work), desc="ingest: map"))
+            step.count(rows=sum(r["counts"]["rows_read"] for r in results), tasks=len(todo))
+        if in_memory:
+            kept = [r.pop("arrays") for r in results if "arrays" in r]
     failed = [r for r in results if r["failed"]]
     counts = _sum_counts([r["counts"] for r in results] + [d["counts"] for d in done_info.values()])
+    examples = [e for r in results for e in r["examples"]] + [e for d in done_info.values() for e in d["examples"]]
     if failed:
         ex = [e for r in failed for e in r["examples"]][:3]
         words = {"nan_weight": "NaN or missing", "inf_weight": "infinite", "negative_weight": "negative",
@@ -125,30 +148,41 @@ def run(ctx: StageContext, inputs: list[dict]) -> dict:
             f"{'s' if counts['invalid_weight'] != 1 else ''} ({reasons}) in {len(failed)} file part"
             f"{'s' if len(failed) > 1 else ''}, e.g. {'; '.join(ex)}; fix them or pass --on-invalid drop")
     ctx.worker_cpu += sum(r.get("cpu", 0.0) for r in results)
-    rank_file = None
+    rank = rank_file = None
     if dense:
         with ctx.substep("labels"):
-            rank_file = work / "scratch" / "rank.npy"
-            if not RunStore.unit_done(work, "labels"):
-                labels_np, rank = parts.combine_seen(work / "scratch", [t.name for t in tasks], dense[1], dense[0])
-                save_npy(rank_file, rank)
-                del rank
+            if kept is not None:  # rows were mapped again: so are the labels
+                labels_np, rank = parts.combine_seen((k.pop("seen") for k in kept), dense[1], dense[0])
                 _write_labels(labels_path, pa.array(labels_np, pa.int64()))
-                RunStore.unit_commit(work, "labels", ["labels.parquet", "scratch/rank.npy"], info)
+                RunStore.unit_commit(work, "labels", ["labels.parquet"], info)
+            elif not in_memory:
+                rank_file = work / "scratch" / "rank.npy"
+                if not RunStore.unit_done(work, "labels"):
+                    labels_np, rank = parts.combine_seen(parts.scratch_bitmaps(work / "scratch", [t.name for t in tasks]),
+                                                         dense[1], dense[0])
+                    save_npy(rank_file, rank)
+                    del rank
+                    _write_labels(labels_path, pa.array(labels_np, pa.int64()))
+                    RunStore.unit_commit(work, "labels", ["labels.parquet", "scratch/rank.npy"], info)
+                rank = None
+    if in_memory and kept is not None:
+        RunStore.unit_commit(work, "map-counts", [], {"counts": counts, "examples": examples[:5]})
     n_nodes = pq.read_metadata(labels_path).num_rows
 
     # 3. aggregate buckets -----------------------------------------------------------
-    bounds = parts_bounds(space, n_buckets)
     with ctx.substep("aggregate") as step:
-        jobs = [b for b in range(n_buckets) if not RunStore.unit_done(work, f"agg-{b:05d}")]
-        agg = _guard(lambda: eng.map(_agg_unit, jobs, bounds, str(work), [t.name for t in tasks], p["merge"],
-                                     bool(cols.weight), str(rank_file) if rank_file else None,
-                                     desc="ingest: aggregate"))
+        if in_memory:
+            agg = _guard(lambda: eng.map(_agg_memory_unit, jobs, bounds, str(work), kept, p["merge"], weighted, rank,
+                                         desc="ingest: aggregate"))
+        else:
+            agg = _guard(lambda: eng.map(_agg_unit, jobs, bounds, str(work), [t.name for t in tasks], p["merge"],
+                                         weighted, str(rank_file) if rank_file else None, desc="ingest: aggregate"))
         step.count(rows=sum(a["rows_in"] for a in agg), pairs=sum(a["pairs"] for a in agg), buckets=len(jobs))
         agg_info = {a["bucket"]: a for a in agg}
         for b in range(n_buckets):
             if b not in agg_info:
                 agg_info[b] = RunStore.unit_info(work, f"agg-{b:05d}")
+    del kept
     ctx.worker_cpu += sum(a.get("cpu", 0.0) for a in agg)
     shutil.rmtree(work / "scratch", ignore_errors=True)
 
@@ -174,7 +208,7 @@ def run(ctx: StageContext, inputs: list[dict]) -> dict:
         "weight_max": max((a["w_max"] for a in agg_info.values() if a["w_max"] is not None), default=None),
         "merge": p["merge"],
         "buckets": n_buckets,
-        "examples_dropped": [e for r in results for e in r["examples"]][:5],
+        "examples_dropped": examples[:5],
     }
     if report["rows_read"] != report["rows_kept"] + report["rows_dropped_total"]:
         raise RuntimeError(f"internal accounting error: {report}")
@@ -268,8 +302,11 @@ def parts_bounds(n_nodes: int, n_buckets: int) -> list[int]:
 
 
 def _map_unit(task, cols, window, mapper, n_buckets, on_invalid, work):
+    """Map one read task; with ``work=None`` its rows come back in memory, else as a checkpointed unit."""
     from pathlib import Path
 
+    if work is None:
+        return parts.map_and_bucket(task, cols, window, mapper, n_buckets, on_invalid, None)
     work = Path(work)
     res = parts.map_and_bucket(task, cols, window, mapper, n_buckets, on_invalid, work / "scratch")
     if not res["failed"]:
@@ -279,12 +316,25 @@ def _map_unit(task, cols, window, mapper, n_buckets, on_invalid, work):
 
 
 def _agg_unit(b, bounds, work, task_names, merge, weighted, rank_file):
+    """Aggregate bucket ``b`` from the scratch files (runs on any worker)."""
     from pathlib import Path
 
     work = Path(work)
+    rank = load_npy(Path(rank_file), mmap=True) if rank_file else None
+    pieces = parts.scratch_pieces(work / "scratch", task_names, b, weighted)
+    return _agg_commit(work, b, bounds, pieces, merge, weighted, rank)
+
+
+def _agg_memory_unit(b, bounds, work, kept, merge, weighted, rank):
+    """Aggregate bucket ``b`` from rows kept in this process's memory."""
+    from pathlib import Path
+
+    return _agg_commit(Path(work), b, bounds, parts.memory_pieces(kept, b), merge, weighted, rank)
+
+
+def _agg_commit(work, b, bounds, pieces, merge, weighted, rank):
     rel = f"edges/part-{b:05d}.parquet"
-    res = parts.aggregate_bucket(b, bounds[b], bounds[b + 1], work / "scratch", task_names, merge, work / rel,
-                                 weighted=weighted, rank_file=rank_file)
+    res = parts.aggregate_bucket(b, bounds[b], bounds[b + 1], pieces, merge, work / rel, weighted=weighted, rank=rank)
     RunStore.unit_commit(work, f"agg-{b:05d}", [rel], res)
     return res
 
