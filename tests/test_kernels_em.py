@@ -170,6 +170,10 @@ def test_partitions_match_single_sweep_and_scipy(prob, data):
     np.testing.assert_allclose(ll_part, ll_one, rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(ll_one - em.penalty(mu, P), loglik_ref, rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(em.em_update(mu, acc_one, P), mu_ref, rtol=1e-12, atol=0)
+    # the fused update and penalty: the same bits as the two kernels apart
+    fused_mu, fused_pen = em.em_update_penalty(mu, acc_one, P)
+    np.testing.assert_array_equal(fused_mu, em.em_update(mu, acc_one, P))
+    assert fused_pen == em.penalty(mu, P)
     np.testing.assert_allclose(em.loglik(ptr, cand, y, mu, P),
                                em.loglik_reference(ptr, cand, y, mu, P), rtol=1e-12, atol=1e-12)
 

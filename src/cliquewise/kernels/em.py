@@ -48,6 +48,7 @@ __all__ = [
     "EMResult",
     "em_partial",
     "em_update",
+    "em_update_penalty",
     "em_step_reference",
     "fit_em",
     "fit_local",
@@ -235,6 +236,28 @@ def em_update(mu, acc, P):
         m = mu[k]
         out[k] = 0.0 if m == 0.0 else m * acc[k] / P[k]
     return out
+
+
+@numba.njit(nogil=True, cache=True)
+def em_update_penalty(mu, acc, P):
+    """:func:`em_update` and :func:`penalty` of ``mu`` in one pass over the arrays.
+
+    Returns
+    -------
+    tuple of (float64 array, float)
+        The next ``mu`` and ``sum_k mu_k P_k`` (summed in the same order as
+        :func:`penalty`, so the two agree bit for bit).
+    """
+    n = mu.shape[0]
+    if acc.shape[0] != n or P.shape[0] != n:
+        raise ValueError("mu, acc and P differ in length")
+    out = np.empty(n, dtype=np.float64)
+    total = 0.0
+    for k in range(n):
+        m = mu[k]
+        total += m * P[k]
+        out[k] = 0.0 if m == 0.0 else m * acc[k] / P[k]
+    return out, total
 
 
 @numba.njit(nogil=True, cache=True)

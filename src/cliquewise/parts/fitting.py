@@ -217,17 +217,27 @@ def clear_cache() -> None:
     _TREE_CACHE.clear()
 
 
-def em_part(part: dict, tree_dir: str, mu: np.ndarray, want_loglik: bool = True) -> dict:
+def em_part(part: dict, tree_dir: str, mu: np.ndarray, want_loglik: bool = True, out: np.ndarray | None = None) -> dict:
     """The map of one EM step on one part: accumulators (own block and stragglers)
-    and ``sum Y log lambda``."""
+    and ``sum Y log lambda``.
+
+    With ``out`` (a stage-wide accumulator shared by threads of this process) the
+    own block is written straight into ``out[cand_lo:cand_hi + 1]``, which no other
+    part writes, and the result carries ``acc=None``; stragglers always come back.
+    """
     if part["width"] == 0:
         return {"cand_lo": 0, "acc": np.zeros(0), "strag": np.zeros(0, np.int64), "strag_acc": np.zeros(0),
                 "loglik": 0.0}
     cand, depth, end, ey, strag = _load_tree(tree_dir, part)
     acc = np.zeros(part["width"], np.float64)
     ll = tree_sweep(cand, depth, end, ey, _local(part, strag, mu), acc, want_loglik)
-    w = part["cand_hi"] - part["cand_lo"] + 1
-    return {"cand_lo": part["cand_lo"], "acc": acc[:w], "strag": strag, "strag_acc": acc[w:], "loglik": float(ll)}
+    lo = part["cand_lo"]
+    w = part["cand_hi"] - lo + 1
+    own = acc[:w]
+    if out is not None:
+        out[lo:lo + w] = own
+        own = None
+    return {"cand_lo": lo, "acc": own, "strag": strag, "strag_acc": acc[w:], "loglik": float(ll)}
 
 
 def heaviest_first(part_list: list[dict]) -> list[int]:
@@ -240,9 +250,11 @@ def heaviest_first(part_list: list[dict]) -> list[int]:
 
 
 def add_partial(acc: np.ndarray, res: dict) -> None:
-    """Add one :func:`em_part` result into the stage-wide accumulator."""
+    """Add one :func:`em_part` result into the stage-wide accumulator (its own
+    block only when it was not written there already)."""
     lo = res["cand_lo"]
-    acc[lo:lo + len(res["acc"])] += res["acc"]
+    if res["acc"] is not None:
+        acc[lo:lo + len(res["acc"])] += res["acc"]
     acc[res["strag"]] += res["strag_acc"]  # stragglers are distinct within a part
 
 

@@ -27,7 +27,7 @@ import shutil
 
 import numpy as np
 
-from cliquewise.kernels.em import em_update, fit_em, loglik_constant, penalty
+from cliquewise.kernels.em import em_update, em_update_penalty, fit_em, loglik_constant, penalty
 from cliquewise.parts import fitting as parts
 from cliquewise.stage import StageContext
 from cliquewise.store import RunStore, load_npy, read_json, save_npy, write_json_atomic
@@ -52,16 +52,31 @@ class DistributedStep:
         self.order = parts.heaviest_first(part_list)
         self.P = P
         self.evals = 0
+        self._acc = None
 
     def partial(self, mu, want_loglik=True):
+        """Accumulators over all parts and ``sum Y log lambda``.
+
+        On the embedded engine the parts write their own blocks into one buffer
+        (reused: the result is valid until the next call); on a cluster they
+        return them. Either way the stragglers are added in part order, so the
+        sums do not depend on the engine.
+        """
         eng = self.ctx.engine
-        mu_ref = eng.scatter(mu)
         order = self.order
-        done = eng.map(parts.em_part, [self.parts[i] for i in order], self.tree_dir, mu_ref, want_loglik)
+        shared = eng.client is None
+        if shared:
+            if self._acc is None or len(self._acc) != len(mu):
+                self._acc = np.zeros(len(mu), np.float64)  # entries of no part stay 0
+            acc = self._acc
+            done = eng.map(parts.em_part, [self.parts[i] for i in order], self.tree_dir, mu, want_loglik, acc)
+        else:
+            done = eng.map(parts.em_part, [self.parts[i] for i in order], self.tree_dir, eng.scatter(mu),
+                           want_loglik)
+            acc = np.zeros(len(mu), np.float64)
         res = [None] * len(order)
         for i, r in zip(order, done):
             res[i] = r
-        acc = np.zeros(len(mu), np.float64)
         total = 0.0
         for r in res:  # part order: deterministic whatever the engine
             parts.add_partial(acc, r)
@@ -71,7 +86,8 @@ class DistributedStep:
     def __call__(self, mu):
         self.evals += 1
         acc, total = self.partial(mu)
-        return em_update(mu, acc, self.P), total - penalty(mu, self.P)
+        nxt, pen = em_update_penalty(mu, acc, self.P)
+        return nxt, total - pen
 
     def without_loglik(self, mu):
         self.evals += 1
@@ -139,7 +155,7 @@ def run(ctx: StageContext) -> dict:
 
     with ctx.substep("start"):
         acc, _ = step.partial(np.ones(len(P)))
-        mu0 = acc / P_stage  # each edge's weight shared equally among its candidates
+        mu0 = acc / P_stage  # a new array: the step reuses its buffer  # each edge's weight shared equally among its candidates
     with ctx.substep("em") as sub:
         evals0 = step.evals
         full = _fit_phase(ctx, step, mu0, p, "full", work)
