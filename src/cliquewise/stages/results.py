@@ -93,7 +93,7 @@ def run(ctx: StageContext) -> dict:
         P = size * (size - 1) / 2.0
         expected = mu * P
         total = float(expected.sum())
-        order = np.lexsort((np.arange(len(mu)), -expected))  # strongest first, stable
+        order = np.argsort(-expected, kind="stable")  # strongest first, ties by candidate id
         pq.write_table(pa.table({
             "clique_id": pa.array(np.arange(len(mu), dtype=np.int64)),
             "size": pa.array(size[order].astype(np.int64)),
