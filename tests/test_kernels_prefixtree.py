@@ -157,3 +157,21 @@ def test_check_tree_rejects_bad_arrays():
         check_tree(ok[0], np.array([1, 0], np.int32), ok[2], ok[3], 2)  # not a preorder
     with pytest.raises(ValueError):
         check_tree(ok[0], ok[1], np.array([5], np.int64), ok[3], 2)
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.lists(st.integers(0, 60), max_size=300), st.booleans())
+def test_counting_sorts_equal_numpy_stable_argsort(keys, huge):
+    # reference: numpy's stable argsort (the rank of each candidate in the list
+    # order is the inverse of argsort(-pairs, stable); order_by_key is argsort itself)
+    from cliquewise.kernels.prefixtree import order_by_key
+
+    pairs = np.array(keys, np.int64)
+    if huge and len(pairs):
+        pairs[0] = 10**9  # beyond the counting sort's range: the argsort route
+    rank = candidate_rank(pairs)
+    want = np.empty(len(pairs), np.int64)
+    want[np.argsort(-pairs, kind="stable")] = np.arange(len(pairs))
+    np.testing.assert_array_equal(rank, want)
+    tops = np.array(keys, np.int64) - 1  # keys in [-1, 60)
+    np.testing.assert_array_equal(order_by_key(tops, np.int64(60)), np.argsort(tops, kind="stable"))

@@ -22,8 +22,8 @@ from pathlib import Path
 
 import numpy as np
 
-from cliquewise.kernels.prefixtree import (build_tree, candidate_rank, check_tree, first_seen_order, row_tops,
-                                            tree_sweep, tree_unsupported)
+from cliquewise.kernels.prefixtree import (build_tree, candidate_rank, check_tree, first_seen_order, order_by_key,
+                                            row_tops, tree_sweep, tree_unsupported)
 from cliquewise.store import load_npy, save_npy
 
 TREE_ARRAYS = ("cand", "depth", "end", "ey")  # plus p*.strag.npy once localized
@@ -50,8 +50,9 @@ def plan_tree_parts(enum_dir: str, out_dir: str, rank, per_part: int) -> list[di
     d = Path(enum_dir)
     inc_ptr = load_npy(d / "inc_ptr.npy", mmap=True)
     inc_cand = load_npy(d / "inc_cand.npy", mmap=True)
-    top = row_tops(inc_ptr, inc_cand, np.asarray(rank))
-    order = np.argsort(top, kind="stable")
+    rank = np.asarray(rank)
+    top = row_tops(inc_ptr, inc_cand, rank)
+    order = order_by_key(top, np.int64(len(rank)))  # stable: edge order within a top
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     save_npy(out / "order.npy", order)
