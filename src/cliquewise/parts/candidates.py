@@ -252,46 +252,60 @@ def _stop_point(g: dict, s: int, e: int, cliques_left: int, work_left: int, stat
 UNIT_ARRAYS = ("ptr", "nodes", "lmax", "lmin", "pairs")
 
 
-def collect_units(folder: Path, tags: list[str], out: Path, n_edges: int) -> dict:
+def collect_units(folder: Path, tags: list[str], out: Path, n_edges: int, part: str = "all") -> dict:
     """Concatenate unit outputs in unit order into the candidate table files, and
     build the edge -> candidate CSR from the units' pairs.
 
-    Writes ``cand_ptr``, ``cand_nodes``, ``level_max``, ``level_min``, ``inc_ptr``
-    and ``inc_cand`` (int32 while there are fewer than ``2**31`` candidates).
+    Writes ``cand_ptr``, ``cand_nodes``, ``level_max``, ``level_min`` (``part="tables"``)
+    and ``inc_ptr``, ``inc_cand`` (``part="incidence"``; int32 while there are fewer
+    than ``2**31`` candidates); ``part="all"`` does both. The two halves read
+    different unit files and write different outputs, so they can run side by side.
     """
     t_cpu = time.thread_time()
-    units = [{name: load_npy(folder / f"{tag}.{name}.npy") for name in UNIT_ARRAYS} for tag in tags]
+    info: dict = {}
+    if part in ("all", "tables"):
+        units = [{name: load_npy(folder / f"{tag}.{name}.npy") for name in ("ptr", "nodes", "lmax", "lmin")}
+                 for tag in tags]
+        ptr = _joined_ptr(units)
+        out.mkdir(parents=True, exist_ok=True)
+        save_npy(out / "cand_ptr.npy", ptr)
+        for name, dtype, file in (("nodes", np.int64, "cand_nodes"), ("lmax", np.int32, "level_max"),
+                                  ("lmin", np.int32, "level_min")):
+            arr = np.concatenate([u[name] for u in units]) if units else np.empty(0, dtype)
+            save_npy(out / f"{file}.npy", arr)
+            del arr
+        sizes = np.diff(ptr)
+        info.update(candidates=int(len(ptr) - 1), member_rows=int(ptr[-1]),
+                    largest_candidate=int(sizes.max()) if len(sizes) else 0)
+        del units
+    if part in ("all", "incidence"):
+        units = [{name: load_npy(folder / f"{tag}.{name}.npy") for name in ("ptr", "pairs")} for tag in tags]
+        n_cand = sum(len(u["ptr"]) - 1 for u in units)
+        cnt = np.zeros(n_edges + 2, np.int64)
+        for u in units:
+            count_rows(u["pairs"], cnt)
+        starts_from_counts(cnt, np.int64(n_edges))
+        n_inc = int(cnt[n_edges + 1]) if n_edges else 0
+        inc_cand = np.empty(n_inc, np.int32 if n_cand < 2**31 else np.int64)
+        k0 = 0
+        for u in units:
+            scatter_rows(u["ptr"], u["pairs"], np.int64(k0), cnt, inc_cand)
+            k0 += len(u["ptr"]) - 1
+        inc_ptr = cnt[: n_edges + 1]
+        out.mkdir(parents=True, exist_ok=True)
+        save_npy(out / "inc_ptr.npy", inc_ptr)
+        save_npy(out / "inc_cand.npy", inc_cand)
+        info.update(incidences=n_inc, uncovered_edges=int((np.diff(inc_ptr) == 0).sum()))
+    info["cpu"] = time.thread_time() - t_cpu
+    return info
+
+
+def _joined_ptr(units: list[dict]) -> np.ndarray:
     ptrs, offset = [np.zeros(1, np.int64)], 0
     for u in units:
         ptrs.append(u["ptr"][1:] + offset)
         offset += int(u["ptr"][-1])
-    ptr = np.concatenate(ptrs)
-    out.mkdir(parents=True, exist_ok=True)
-    save_npy(out / "cand_ptr.npy", ptr)
-    for name, dtype, file in (("nodes", np.int64, "cand_nodes"), ("lmax", np.int32, "level_max"),
-                              ("lmin", np.int32, "level_min")):
-        arr = np.concatenate([u[name] for u in units]) if units else np.empty(0, dtype)
-        save_npy(out / f"{file}.npy", arr)
-        del arr
-    n_cand = len(ptr) - 1
-    cnt = np.zeros(n_edges + 2, np.int64)
-    for u in units:
-        count_rows(u["pairs"], cnt)
-    starts_from_counts(cnt, np.int64(n_edges))
-    n_inc = int(cnt[n_edges + 1]) if n_edges else 0
-    inc_cand = np.empty(n_inc, np.int32 if n_cand < 2**31 else np.int64)
-    k0 = 0
-    for u in units:
-        scatter_rows(u["ptr"], u["pairs"], np.int64(k0), cnt, inc_cand)
-        k0 += len(u["ptr"]) - 1
-    inc_ptr = cnt[: n_edges + 1]
-    save_npy(out / "inc_ptr.npy", inc_ptr)
-    save_npy(out / "inc_cand.npy", inc_cand)
-    sizes = np.diff(ptr)
-    return {"candidates": int(n_cand), "member_rows": int(ptr[-1]),
-            "largest_candidate": int(sizes.max()) if len(sizes) else 0,
-            "incidences": n_inc, "uncovered_edges": int((np.diff(inc_ptr) == 0).sum()),
-            "cpu": time.thread_time() - t_cpu}
+    return np.concatenate(ptrs)
 
 
 def plan_units(n_edges: int, edges_per_unit: int) -> list[tuple[int, int]]:

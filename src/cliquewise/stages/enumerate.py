@@ -91,7 +91,8 @@ def run(ctx: StageContext) -> dict:
         step.count(edges=n_edges, units=len(todo), candidates=sum(s.get("candidates", 0) for s in unit_stats))
 
     with ctx.substep("collect") as step:  # candidates in unit order, and the incidence by a counting sort
-        cinfo = ctx.engine.submit(parts.collect_units, work / "cl", tags_all, work, n_edges).result()
+        halves = ctx.engine.map(_collect, ["tables", "incidence"], work / "cl", tags_all, work, n_edges)
+        cinfo = {**halves[0], **halves[1], "cpu": halves[0]["cpu"] + halves[1]["cpu"]}
         step.count(candidates=cinfo["candidates"], incidences=cinfo["incidences"])
         ctx.worker_cpu += cinfo.pop("cpu", 0.0)
         shutil.rmtree(work / "cl", ignore_errors=True)
@@ -116,6 +117,10 @@ def run(ctx: StageContext) -> dict:
         "direct_components": dinfo["direct"],
         "size_histogram": {str(s): int(c) for s, c in enumerate(hist) if c},
     }
+
+
+def _collect(part, folder, tags, out, n_edges):
+    return parts.collect_units(folder, tags, out, n_edges, part)
 
 
 def _unit(item, graph_dir, max_cliques, max_seconds, work):
