@@ -496,3 +496,18 @@ mount --bind {run} {run} && mount -o remount,bind,ro {run}
     assert proc.returncode == 2, proc.stderr
     assert proc.stderr.count("cliquewise: error:") == 1 and "not writable" in proc.stderr, proc.stderr
     assert {p: p.read_bytes() for p in run.rglob("*") if p.is_file()} == before
+
+
+def test_save_npy_parts_equals_numpy_concatenate(tmp_path):
+    # reference: numpy.concatenate + numpy.load (the .npy format is numpy's own)
+    from cliquewise.store import load_npy, save_npy_parts
+
+    rng = np.random.default_rng(3)
+    parts = [rng.integers(0, 1000, n) for n in (0, 5, 1, 17, 0, 3)]
+    save_npy_parts(tmp_path / "a.npy", iter(parts), np.int32, sum(map(len, parts)))
+    got = np.load(tmp_path / "a.npy", allow_pickle=False)
+    np.testing.assert_array_equal(got, np.concatenate(parts).astype(np.int32))
+    assert got.dtype == np.int32
+    np.testing.assert_array_equal(load_npy(tmp_path / "a.npy", mmap=True), got)
+    with pytest.raises(ValueError, match="expected"):
+        save_npy_parts(tmp_path / "b.npy", iter(parts), np.int64, 99)

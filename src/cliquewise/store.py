@@ -124,6 +124,28 @@ def save_npy(path: Path, arr: np.ndarray) -> None:
         np.save(fh, arr, allow_pickle=False)
 
 
+def save_npy_parts(path: Path, parts: Iterable[np.ndarray], dtype, length: int) -> None:
+    """Save the concatenation of ``parts`` as one ``.npy`` of ``length`` items
+    without building it in memory: the header first, then each part's bytes.
+
+    ``parts`` is consumed once (a generator of memory-mapped unit files keeps
+    one part resident at a time). A total other than ``length`` is an error.
+    """
+    dtype = np.dtype(dtype)
+    if dtype == object:
+        raise TypeError("object arrays are not stored (they would need pickle)")
+    n = 0
+    with open(path, "wb") as fh:
+        np.lib.format.write_array_header_1_0(
+            fh, {"descr": np.lib.format.dtype_to_descr(dtype), "fortran_order": False, "shape": (int(length),)})
+        for part in parts:
+            a = np.ascontiguousarray(part, dtype)
+            fh.write(memoryview(a).cast("B"))
+            n += len(a)
+    if n != length:
+        raise ValueError(f"{path}: wrote {n} items, expected {length}")
+
+
 def load_npy(path: Path, mmap: bool = False) -> np.ndarray:
     """Load an ``.npy`` file; one holding Python objects (pickle) is refused, never loaded."""
     try:

@@ -25,7 +25,7 @@ import pyarrow.parquet as pq
 from cliquewise.kernels.cliques import level_min, sweep_candidates
 from cliquewise.kernels.graph import csr_from_edges
 from cliquewise.kernels.incidence import candidate_pairs, count_rows, scatter_rows, starts_from_counts
-from cliquewise.store import load_npy, save_npy
+from cliquewise.store import load_npy, save_npy, save_npy_parts
 
 GRAPH_FILES = ("indptr", "nbr", "nlev", "eid", "u", "v", "lev", "weight")
 STATUS_TEXT = {1: "clique count", 2: "work", 3: "time"}
@@ -263,36 +263,35 @@ def collect_units(folder: Path, tags: list[str], out: Path, n_edges: int, part: 
     """
     t_cpu = time.thread_time()
     info: dict = {}
+    out.mkdir(parents=True, exist_ok=True)
+
+    def each(name):  # one unit file at a time, memory-mapped: never all units at once
+        for tag in tags:
+            yield load_npy(folder / f"{tag}.{name}.npy", mmap=True)
+
+    ptr = _joined_ptr([load_npy(folder / f"{tag}.ptr.npy") for tag in tags])
+    n_cand = len(ptr) - 1
     if part in ("all", "tables"):
-        units = [{name: load_npy(folder / f"{tag}.{name}.npy") for name in ("ptr", "nodes", "lmax", "lmin")}
-                 for tag in tags]
-        ptr = _joined_ptr(units)
-        out.mkdir(parents=True, exist_ok=True)
         save_npy(out / "cand_ptr.npy", ptr)
         for name, dtype, file in (("nodes", np.int64, "cand_nodes"), ("lmax", np.int32, "level_max"),
                                   ("lmin", np.int32, "level_min")):
-            arr = np.concatenate([u[name] for u in units]) if units else np.empty(0, dtype)
-            save_npy(out / f"{file}.npy", arr)
-            del arr
+            save_npy_parts(out / f"{file}.npy", each(name), dtype, int(ptr[-1]) if name == "nodes" else n_cand)
         sizes = np.diff(ptr)
-        info.update(candidates=int(len(ptr) - 1), member_rows=int(ptr[-1]),
+        info.update(candidates=int(n_cand), member_rows=int(ptr[-1]),
                     largest_candidate=int(sizes.max()) if len(sizes) else 0)
-        del units
     if part in ("all", "incidence"):
-        units = [{name: load_npy(folder / f"{tag}.{name}.npy") for name in ("ptr", "pairs")} for tag in tags]
-        n_cand = sum(len(u["ptr"]) - 1 for u in units)
         cnt = np.zeros(n_edges + 2, np.int64)
-        for u in units:
-            count_rows(u["pairs"], cnt)
+        for pairs in each("pairs"):
+            count_rows(pairs, cnt)
         starts_from_counts(cnt, np.int64(n_edges))
         n_inc = int(cnt[n_edges + 1]) if n_edges else 0
         inc_cand = np.empty(n_inc, np.int32 if n_cand < 2**31 else np.int64)
         k0 = 0
-        for u in units:
-            scatter_rows(u["ptr"], u["pairs"], np.int64(k0), cnt, inc_cand)
-            k0 += len(u["ptr"]) - 1
+        for tag, pairs in zip(tags, each("pairs")):
+            uptr = load_npy(folder / f"{tag}.ptr.npy")
+            scatter_rows(uptr, pairs, np.int64(k0), cnt, inc_cand)
+            k0 += len(uptr) - 1
         inc_ptr = cnt[: n_edges + 1]
-        out.mkdir(parents=True, exist_ok=True)
         save_npy(out / "inc_ptr.npy", inc_ptr)
         save_npy(out / "inc_cand.npy", inc_cand)
         info.update(incidences=n_inc, uncovered_edges=int((np.diff(inc_ptr) == 0).sum()))
@@ -300,12 +299,13 @@ def collect_units(folder: Path, tags: list[str], out: Path, n_edges: int, part: 
     return info
 
 
-def _joined_ptr(units: list[dict]) -> np.ndarray:
-    ptrs, offset = [np.zeros(1, np.int64)], 0
-    for u in units:
-        ptrs.append(u["ptr"][1:] + offset)
-        offset += int(u["ptr"][-1])
-    return np.concatenate(ptrs)
+def _joined_ptr(ptrs: list[np.ndarray]) -> np.ndarray:
+    """The units' candidate pointers as one pointer array."""
+    out, offset = [np.zeros(1, np.int64)], 0
+    for ptr in ptrs:
+        out.append(np.asarray(ptr[1:], np.int64) + offset)
+        offset += int(ptr[-1])
+    return np.concatenate(out)
 
 
 def plan_units(n_edges: int, edges_per_unit: int) -> list[tuple[int, int]]:
