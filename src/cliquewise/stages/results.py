@@ -35,6 +35,31 @@ def params_from(settings) -> dict:
 MEMBER_ROWS_PER_GROUP = 1 << 21
 
 
+CLIQUE_ROWS_PER_GROUP = 1 << 20
+
+
+def _write_cliques(path, order, size, mu, expected, total, levels, lmin, lmax) -> None:
+    """Write ``cliques.parquet`` (strongest first) one row group at a time, so the
+    column copies in clique order never exist for the whole table at once."""
+    schema = pa.schema([("clique_id", pa.int64()), ("size", pa.int64()), ("intensity", pa.float64()),
+                        ("expected_weight", pa.float64()), ("share", pa.float64()),
+                        ("level_min", pa.float64()), ("level_max", pa.float64())])
+    n = len(order)
+    with pq.ParquetWriter(path, schema, compression="zstd") as writer:
+        for i in range(0, max(n, 1), CLIQUE_ROWS_PER_GROUP):
+            o = order[i:i + CLIQUE_ROWS_PER_GROUP]
+            e = expected[o]
+            writer.write_table(pa.table({
+                "clique_id": np.arange(i, i + len(o), dtype=np.int64),
+                "size": size[o].astype(np.int64),
+                "intensity": mu[o],
+                "expected_weight": e,
+                "share": e / total if total > 0 else np.zeros(len(o)),
+                "level_min": np.asarray(levels[lmin[o]], np.float64) if len(levels) else np.zeros(len(o)),
+                "level_max": np.asarray(levels[lmax[o]], np.float64) if len(levels) else np.zeros(len(o)),
+            }, schema=schema))
+
+
 def _write_members(path, ptr: np.ndarray, members: np.ndarray, order: np.ndarray, labels: pa.Array) -> int:
     """Write ``members.parquet`` sorted by (clique_id, node_id), one row group at a time.
 
@@ -84,25 +109,17 @@ def run(ctx: StageContext) -> dict:
         pq.write_table(table, out / "nodes.parquet", compression="zstd")
     with ctx.substep("cliques"):
         ptr = load_npy(enu / "cand_ptr.npy")
-        members = load_npy(enu / "cand_nodes.npy")
         levels = load_npy(enu / "levels.npy")
-        lmin = load_npy(enu / "level_min.npy")
-        lmax = load_npy(enu / "level_max.npy")
+        lmin = load_npy(enu / "level_min.npy", mmap=True)
+        lmax = load_npy(enu / "level_max.npy", mmap=True)
         mu = load_npy(fit / "mu.npy")
         size = np.diff(ptr)
-        P = size * (size - 1) / 2.0
-        expected = mu * P
+        expected = mu * (size * (size - 1) / 2.0)
         total = float(expected.sum())
         order = np.argsort(-expected, kind="stable")  # strongest first, ties by candidate id
-        pq.write_table(pa.table({
-            "clique_id": pa.array(np.arange(len(mu), dtype=np.int64)),
-            "size": pa.array(size[order].astype(np.int64)),
-            "intensity": pa.array(mu[order]),
-            "expected_weight": pa.array(expected[order]),
-            "share": pa.array(expected[order] / total if total > 0 else np.zeros(len(mu))),
-            "level_min": pa.array(levels[lmin[order]] if len(levels) else np.zeros(len(mu))),
-            "level_max": pa.array(levels[lmax[order]] if len(levels) else np.zeros(len(mu))),
-        }), out / "cliques.parquet", compression="zstd")
+        _write_cliques(out / "cliques.parquet", order, size, mu, expected, total, levels, lmin, lmax)
+        del expected, lmin, lmax
+    members = load_npy(enu / "cand_nodes.npy", mmap=True)
     with ctx.substep("members") as step:
         rows = _write_members(out / "members.parquet", ptr, members, order, labels)
         step.count(rows=rows)
