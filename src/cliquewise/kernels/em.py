@@ -470,6 +470,7 @@ def fit_em(
             x = x2  # alpha = -1: the extrapolated point is x2 itself
             continue
         xp = squarem_point(x, x1, x2, alpha, min_ratio)  # projected; nan counts as not positive
+        x = x1 = None  # not needed any more: one vector less held while F(x') runs
         x3, lp = step(xp)
         n_evals += 1
         x = x3 if float(lp) >= l0 else x2  # safeguard (False for nan)

@@ -159,12 +159,14 @@ def prepare_trees(engine, enum_dir: str, tree_dir: str, sizes: np.ndarray, per_p
     """
     sizes = np.asarray(sizes, np.int64)
     rank = candidate_rank(sizes * (sizes - 1) // 2)
-    by_rank = np.argsort(rank)
+    del sizes
+    by_rank = np.empty_like(rank)  # the inverse permutation
+    by_rank[rank] = np.arange(len(rank))
     rank_ref, by_rank_ref = engine.scatter(rank), engine.scatter(by_rank)
     planned = engine.submit(plan_tree_parts, str(enum_dir), str(tree_dir), rank_ref, per_part).result()
     built = engine.map(tree_part, planned, str(enum_dir), str(tree_dir), rank_ref, by_rank_ref,
                        desc="fit: prefix trees")
-    new_id, first = number_candidates(built, str(tree_dir), len(sizes))
+    new_id, first = number_candidates(built, str(tree_dir), len(rank))
     new_ref = engine.scatter(new_id)
     part_list = engine.map(_localize_item, [(b, first[i], first[i + 1]) for i, b in enumerate(built)],
                            str(tree_dir), new_ref, desc="fit: numbering")

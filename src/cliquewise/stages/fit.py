@@ -131,9 +131,7 @@ def run(ctx: StageContext) -> dict:
     p = ctx.params
     enum_dir = ctx.input_dir("enumerate")
     work = ctx.work
-    cand_ptr = load_npy(enum_dir / "cand_ptr.npy")
-    sizes = np.diff(cand_ptr).astype(np.float64)
-    P = sizes * (sizes - 1.0) / 2.0
+    sizes = np.diff(load_npy(enum_dir / "cand_ptr.npy", mmap=True)).astype(np.int32)  # members per candidate
     inc_ptr = load_npy(enum_dir / "inc_ptr.npy", mmap=True)
     total_inc = int(inc_ptr[-1]) if len(inc_ptr) else 0
     per_part = parts.part_size(total_inc, p["incidences_per_part"])
@@ -150,11 +148,14 @@ def run(ctx: StageContext) -> dict:
         sub.count(incidences=total_inc, tree_nodes=sum(r["nodes"] for r in part_list), parts=len(part_list))
     inv = np.empty_like(new_id)
     inv[new_id] = np.arange(len(new_id))
-    P_stage = P[inv]  # the EM runs in the trees' numbering: position new_id[k] holds candidate k
+    s_stage = sizes[inv].astype(np.float64)
+    P_stage = s_stage * (s_stage - 1.0) / 2.0  # the EM runs in the trees' numbering: position new_id[k] holds candidate k
+    K = len(sizes)
+    del sizes, inv, s_stage  # candidate-length arrays the EM does not need (memory at scale)
     step = DistributedStep(ctx, tree_dir, part_list, P_stage)
 
     with ctx.substep("start"):
-        acc, _ = step.partial(np.ones(len(P)))
+        acc, _ = step.partial(np.ones(K))
         mu0 = acc / P_stage  # a new array: the step reuses its buffer  # each edge's weight shared equally among its candidates
     with ctx.substep("em") as sub:
         evals0 = step.evals
@@ -171,16 +172,17 @@ def run(ctx: StageContext) -> dict:
         refit = _fit_phase(ctx, step, mu, p, "kept", work) if pruned else full
         sub.count(iterations=refit.iterations if pruned else 0, evaluations=step.evals - evals0,
                   incidences=total_inc)
+    fitted_total = float(np.sum(refit.mu * P_stage))
     mu = refit.mu[new_id]  # back to the candidates' own numbering
     mu_full = mu_full[new_id]
     y = load_npy(enum_dir / "weight.npy", mmap=True)
     const = float(loglik_constant(np.asarray(y)))
     kept = int((mu > 0).sum())
     report = {
-        "candidates": int(len(P)),
+        "candidates": int(K),
         "groups_kept": kept,
-        "pruned": int(len(P) - kept),
-        "redundancy": float(len(P) / kept) if kept else None,
+        "pruned": int(K - kept),
+        "redundancy": float(K / kept) if kept else None,
         "prune_threshold": p["prune"],
         "restored_for_support": int(len(restore)),
         "iterations": int(full.iterations + (refit.iterations if pruned else 0)),
@@ -192,7 +194,7 @@ def run(ctx: StageContext) -> dict:
         "loglik": float(refit.loglik) + const,
         "loglik_constant": const,
         "weight_total": float(np.sum(y)),
-        "fitted_total": float(np.sum(mu * P)),
+        "fitted_total": fitted_total,
         "parts": len(part_list),
         "tree_nodes": int(sum(r["nodes"] for r in part_list)),
         "tree_ends": int(sum(r["ends"] for r in part_list)),
