@@ -29,7 +29,7 @@ Layout of a tree (one part of the edges):
            of ids local to the tree (the fit uses a part's own block of
            candidates, then its stragglers: see ``parts/fitting.py``);
 ``depth``  depth of each node (roots 0), ``uint16`` or ``int32``;
-``end``    node index of each end node, increasing (int64);
+``end``    node index of each end node, increasing (int64, or int32 in the fit's parts);
 ``ey``     summed weight of the edges ending there (float64).
 
 What lives here: :func:`candidate_rank` (the list order), :func:`row_tops` (each

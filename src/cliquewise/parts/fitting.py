@@ -123,7 +123,8 @@ def localize_part(part: dict, out_dir: str, new_id, own_lo: int, own_end: int) -
     ``mu`` and an accumulator only over ``w`` plus the stragglers.
 
     Writes ``{out_dir}/p{index:05d}.*.npy`` (``cand`` as uint32 when the local ids
-    allow, ``depth`` as uint16 when the tree is shallow enough) and removes the
+    allow, ``depth`` as uint16 when the tree is shallow enough, ``end`` as int32
+    below 2**31 nodes) and removes the
     ``g*`` files. Returns the part record with ``cand_lo``/``cand_hi`` (the own
     block) and ``width`` (local ids in all).
     """
@@ -141,6 +142,8 @@ def localize_part(part: dict, out_dir: str, new_id, own_lo: int, own_end: int) -
         local = local.astype(np.uint32)  # half the memory traffic of the sweep
     if len(depth) and depth.max() < 2**16 - 1:
         depth = depth.astype(np.uint16)
+    if len(cand) < 2**31 - 1:
+        end = end.astype(np.int32)  # node positions within the part
     for f, arr in zip(_files(out, part["index"]), (local, depth, end, ey)):
         save_npy(f, arr)
     save_npy(out / f"p{part['index']:05d}.strag.npy", strag.astype(np.int64))

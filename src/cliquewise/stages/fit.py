@@ -151,7 +151,7 @@ def run(ctx: StageContext) -> dict:
     s_stage = sizes[inv].astype(np.float64)
     P_stage = s_stage * (s_stage - 1.0) / 2.0  # the EM runs in the trees' numbering: position new_id[k] holds candidate k
     K = len(sizes)
-    del sizes, inv, s_stage  # candidate-length arrays the EM does not need (memory at scale)
+    del sizes, inv, s_stage, new_id  # candidate-length arrays the EM does not need (memory at scale)
     step = DistributedStep(ctx, tree_dir, part_list, P_stage)
 
     with ctx.substep("start"):
@@ -162,19 +162,26 @@ def run(ctx: StageContext) -> dict:
         full = _fit_phase(ctx, step, mu0, p, "full", work)
         sub.count(iterations=full.iterations, evaluations=step.evals - evals0, incidences=total_inc)
     mu_full = full.mu
+    full_iterations, full_converged, full_loglik, full_trace = full.iterations, full.converged, full.loglik, full.trace
+    del full
     with ctx.substep("prune"):
         mu = np.where(mu_full * P_stage < p["prune"], 0.0, mu_full)
         restore = parts.restore_support(ctx.engine, part_list, str(tree_dir), mu, mu_full)
         mu[restore] = mu_full[restore]
         pruned = int(((mu == 0) & (mu_full > 0)).sum())
+        # the full model's mu goes to its output file now rather than staying in
+        # memory through the refit (candidate-length arrays dominate at scale)
+        save_npy(work / "mu_full.npy", mu_full[load_npy(tree_dir / "new_id.npy")])
+        del mu_full
     with ctx.substep("refit") as sub:
         evals0 = step.evals
-        refit = _fit_phase(ctx, step, mu, p, "kept", work) if pruned else full
+        refit = _fit_phase(ctx, step, mu, p, "kept", work) if pruned else None
         sub.count(iterations=refit.iterations if pruned else 0, evaluations=step.evals - evals0,
                   incidences=total_inc)
-    fitted_total = float(np.sum(refit.mu * P_stage))
-    mu = refit.mu[new_id]  # back to the candidates' own numbering
-    mu_full = mu_full[new_id]
+    mu_fit = refit.mu if pruned else mu  # nothing pruned: the full model's mu is the fit
+    fitted_total = float(np.sum(mu_fit * P_stage))
+    del P_stage
+    mu = mu_fit[load_npy(tree_dir / "new_id.npy")]  # back to the candidates' own numbering
     y = load_npy(enum_dir / "weight.npy", mmap=True)
     const = float(loglik_constant(np.asarray(y)))
     kept = int((mu > 0).sum())
@@ -185,13 +192,13 @@ def run(ctx: StageContext) -> dict:
         "redundancy": float(K / kept) if kept else None,
         "prune_threshold": p["prune"],
         "restored_for_support": int(len(restore)),
-        "iterations": int(full.iterations + (refit.iterations if pruned else 0)),
-        "iterations_full": int(full.iterations),
+        "iterations": int(full_iterations + (refit.iterations if pruned else 0)),
+        "iterations_full": int(full_iterations),
         "iterations_refit": int(refit.iterations) if pruned else 0,
         "em_evaluations": step.evals,
-        "converged": bool(full.converged and (refit.converged if pruned else True)),
-        "loglik_full_model": float(full.loglik) + const,
-        "loglik": float(refit.loglik) + const,
+        "converged": bool(full_converged and (refit.converged if pruned else True)),
+        "loglik_full_model": float(full_loglik) + const,
+        "loglik": float(refit.loglik if pruned else full_loglik) + const,
         "loglik_constant": const,
         "weight_total": float(np.sum(y)),
         "fitted_total": fitted_total,
@@ -202,8 +209,7 @@ def run(ctx: StageContext) -> dict:
         "accelerate": p["accelerate"],
     }
     save_npy(work / "mu.npy", mu)
-    save_npy(work / "mu_full.npy", mu_full)
-    write_json_atomic(work / "trace.json", {"full": [float(x) + const for x in full.trace],
+    write_json_atomic(work / "trace.json", {"full": [float(x) + const for x in full_trace],
                                              "kept": [float(x) + const for x in refit.trace] if pruned else []})
     write_json_atomic(work / "report.json", report)
     for f in work.glob("ckpt-*.npy"):
