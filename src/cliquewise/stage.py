@@ -51,7 +51,8 @@ class StageContext:
 
 
 def release_free_memory() -> None:
-    """Hand the C allocator's free memory back to the system (glibc ``malloc_trim``).
+    """Hand the allocators' free memory back to the system (glibc ``malloc_trim``,
+    and pyarrow's memory pool).
 
     Arrays below glibc's mmap threshold (up to 32 MB) live in malloc's heaps, which
     keep freed space; without this, a stage starts with the previous stage's
@@ -65,6 +66,12 @@ def release_free_memory() -> None:
             _TRIM = False
     if _TRIM:
         _TRIM(0)
+    try:  # pyarrow's own allocator (mimalloc or jemalloc) keeps freed blocks too
+        import pyarrow as pa
+
+        pa.default_memory_pool().release_unused()
+    except (ImportError, AttributeError):
+        pass
 
 
 _TRIM = None

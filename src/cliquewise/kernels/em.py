@@ -437,7 +437,7 @@ def fit_em(
     -------
     EMResult
     """
-    x = np.array(mu0, dtype=np.float64, copy=True)
+    x = np.asarray(mu0, dtype=np.float64)  # never written in place: no copy needed
     if np.any(x < 0) or not np.all(np.isfinite(x)):
         raise ValueError("mu0 must be finite and >= 0")
     trace: list[float] = [float(t) for t in trace0] if trace0 is not None else []
