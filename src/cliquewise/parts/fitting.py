@@ -75,17 +75,24 @@ def _files(out: Path, index: int, stem: str = "p") -> list[Path]:
     return [out / f"{stem}{index:05d}.{name}.npy" for name in TREE_ARRAYS]
 
 
-def tree_part(part: dict, enum_dir: str, out_dir: str, rank, by_rank) -> dict:
+def incidence_maps(enum_dir: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``inc_ptr``, ``inc_cand`` and ``weight`` of an enumerate folder, memory-mapped."""
+    d = Path(enum_dir)
+    return (load_npy(d / "inc_ptr.npy", mmap=True), load_npy(d / "inc_cand.npy", mmap=True),
+            load_npy(d / "weight.npy", mmap=True))
+
+
+def tree_part(part: dict, enum_dir: str, out_dir: str, rank, by_rank, maps=None) -> dict:
     """Build one part's prefix tree (global candidate ids) and write it.
 
-    Writes ``{out_dir}/g{index:05d}.cand/.depth/.end/.ey.npy``.
+    Writes ``{out_dir}/g{index:05d}.cand/.depth/.end/.ey.npy``. ``maps`` (from
+    :func:`incidence_maps`) lets threads of one process share one mapping of the
+    incidence: a part's edges are spread over the whole file, and each mapping
+    that touches it counts in full in the process's resident memory.
     """
-    d = Path(enum_dir)
     out = Path(out_dir)
     edges = np.sort(load_npy(out / "order.npy", mmap=True)[part["lo"]:part["hi"]])
-    inc_ptr = load_npy(d / "inc_ptr.npy", mmap=True)
-    inc_cand = load_npy(d / "inc_cand.npy", mmap=True)
-    y = load_npy(d / "weight.npy", mmap=True)
+    inc_ptr, inc_cand, y = maps if maps is not None else incidence_maps(enum_dir)
     cand, depth, end, ey = build_tree(inc_ptr, inc_cand, y, edges, np.asarray(rank), np.asarray(by_rank))
     for f, arr in zip(_files(out, part["index"], "g"), (cand, depth, end, ey)):
         save_npy(f, arr)
@@ -167,8 +174,11 @@ def prepare_trees(engine, enum_dir: str, tree_dir: str, sizes: np.ndarray, per_p
     by_rank[rank] = np.arange(len(rank))
     rank_ref, by_rank_ref = engine.scatter(rank), engine.scatter(by_rank)
     planned = engine.submit(plan_tree_parts, str(enum_dir), str(tree_dir), rank_ref, per_part).result()
-    built = engine.map(tree_part, planned, str(enum_dir), str(tree_dir), rank_ref, by_rank_ref,
+    # threads of this process share one mapping; workers elsewhere open their own
+    maps = incidence_maps(enum_dir) if engine.client is None else None
+    built = engine.map(tree_part, planned, str(enum_dir), str(tree_dir), rank_ref, by_rank_ref, maps,
                        desc="fit: prefix trees")
+    del maps
     new_id, first = number_candidates(built, str(tree_dir), len(rank))
     new_ref = engine.scatter(new_id)
     part_list = engine.map(_localize_item, [(b, first[i], first[i + 1]) for i, b in enumerate(built)],
