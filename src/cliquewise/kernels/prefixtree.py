@@ -403,7 +403,7 @@ def tree_down(cand, depth, end, mu, lam_end):
     The parent's rate is read from the depth stack, except when the node is the
     child of the node just before it (the common case on long shared prefixes):
     then it is still in a register, which takes the store-to-load round trip off
-    the chain of dependent additions (about 30% faster on the fit benchmark's trees).
+    the chain of dependent additions.
     """
     n = cand.shape[0]
     n_end = end.shape[0]
