@@ -127,3 +127,15 @@ def test_workers_that_keep_dying_stop_the_run_clearly_then_resume(job, tmp_path)
     rc, _, err = run_cli("resume", run_dir)
     assert rc == 0, err
     assert_same_results(run_dir, ref)
+
+
+def test_dask_log_lines_stay_quiet_in_a_fresh_process():
+    # importing distributed (which happens inside Engine) sets its loggers to INFO;
+    # a worker dying then printed dask's own traceback next to our one-line error
+    code = ("import logging; logging.basicConfig(level=logging.WARNING)\n"
+            "from cliquewise.engine import Engine, EngineSettings\n"
+            "with Engine(EngineSettings(workers=1, threads=1, progress=False)):\n"
+            "    print(logging.getLogger('distributed.batched').getEffectiveLevel())\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert int(out.stdout.split()[-1]) == 50, out.stdout  # logging.CRITICAL

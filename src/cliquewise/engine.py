@@ -75,6 +75,9 @@ class Engine:
 
     def __init__(self, settings: EngineSettings | None = None):
         self.settings = s = settings or EngineSettings()
+        if s.scheduler or s.workers or s.dashboard:
+            # importing distributed configures its loggers (level INFO); quieten them after
+            import distributed  # noqa: F401
         _quiet_dask_logs()
         self._cluster = None
         self.client = None
