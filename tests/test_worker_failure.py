@@ -139,3 +139,15 @@ def test_dask_log_lines_stay_quiet_in_a_fresh_process():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     assert out.returncode == 0, out.stderr
     assert int(out.stdout.split()[-1]) == 50, out.stdout  # logging.CRITICAL
+
+
+def test_a_task_cancelled_by_the_cluster_is_reported_as_lost_workers():
+    # a scattered input held only by a worker that died makes dask cancel the task
+    # that needed it ("already forgotten"); that is a lost worker, not an internal error
+    from distributed.client import FutureCancelledError
+
+    from cliquewise.engine import EngineError, _raise_worker_loss
+
+    with pytest.raises(EngineError, match="cancelled by the cluster.*cliquewise resume"):
+        _raise_worker_loss(FutureCancelledError("plan-1", "already forgotten"), "fit: plan")
+    _raise_worker_loss(ValueError("x"), "fit: plan")  # anything else goes through unchanged

@@ -144,6 +144,19 @@ class Engine:
             return self._threads
         return max(1, sum(self.client.nthreads().values()))
 
+    def task_memory(self) -> int | None:
+        """Bytes one task may hold: the smallest worker memory limit over its
+        threads (``None`` when the workers have no limit, as on the embedded engine).
+        Stages size the pieces of their larger steps by it."""
+        if self.client is None:
+            return None
+        try:
+            workers = self.client.scheduler_info()["workers"].values()
+            shares = [w["memory_limit"] / max(1, w.get("nthreads", 1)) for w in workers if w.get("memory_limit")]
+        except Exception:  # noqa: BLE001 - an unknown limit means none
+            return None
+        return int(min(shares)) if shares else None
+
     # -- running -------------------------------------------------------------
     def map(self, func: Callable, items: Sequence, *args, desc: str = "", **kwargs) -> list:
         """``[func(item, *args, **kwargs) for item in items]`` on the cluster, in item order."""
@@ -263,12 +276,19 @@ def _raise_worker_loss(exc: BaseException, what) -> None:
         from distributed import KilledWorker
     except ImportError:  # pragma: no cover - distributed is a dependency
         return
+    from concurrent.futures import CancelledError
+
+    name = what if isinstance(what, str) else getattr(what, "__name__", "a task")
     if isinstance(exc, KilledWorker):
-        name = what if isinstance(what, str) else getattr(what, "__name__", "a task")
         raise EngineError(
             f"worker processes died repeatedly while running {name} (out of memory, or killed); finished "
             f"units are checkpointed: fix the cause (e.g. a larger --memory-limit) and run 'cliquewise resume "
             f"RUN_DIR'") from None
+    if isinstance(exc, CancelledError):  # the stages never cancel their own tasks before this point
+        raise EngineError(
+            f"{name} was cancelled by the cluster: its input data were lost, usually because worker processes "
+            f"died (out of memory, or killed); finished units are checkpointed: fix the cause (e.g. a larger "
+            f"--memory-limit) and run 'cliquewise resume RUN_DIR'") from None
 
 
 class _Future:

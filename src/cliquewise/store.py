@@ -124,6 +124,53 @@ def save_npy(path: Path, arr: np.ndarray) -> None:
         np.save(fh, arr, allow_pickle=False)
 
 
+class NpyStream:
+    """A 1-d ``.npy`` file of known length written piece by piece (header first).
+
+    >>> import tempfile, numpy as np
+    >>> path = Path(tempfile.mkdtemp()) / "a.npy"
+    >>> with NpyStream(path, np.int32, 5) as out:
+    ...     out.write(np.arange(3)); out.write(np.arange(2))
+    >>> np.load(path).tolist()
+    [0, 1, 2, 0, 1]
+    """
+
+    def __init__(self, path: Path, dtype, length: int):
+        self.path = Path(path)
+        self.dtype = np.dtype(dtype)
+        if self.dtype == object:
+            raise TypeError("object arrays are not stored (they would need pickle)")
+        self.length = int(length)
+        self.n = 0
+        self._fh = open(self.path, "wb")
+        np.lib.format.write_array_header_1_0(
+            self._fh, {"descr": np.lib.format.dtype_to_descr(self.dtype), "fortran_order": False,
+                       "shape": (self.length,)})
+
+    def write(self, part) -> None:
+        a = np.ascontiguousarray(part, self.dtype)
+        self._fh.write(memoryview(a).cast("B"))
+        self.n += len(a)
+
+    def close(self) -> None:
+        if self._fh is None:
+            return
+        self._fh.close()
+        self._fh = None
+        if self.n != self.length:
+            raise ValueError(f"{self.path}: wrote {self.n} items, expected {self.length}")
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, exc_type, *_):
+        if exc_type is None:
+            self.close()
+        elif self._fh is not None:
+            self._fh.close()
+            self._fh = None
+
+
 def save_npy_parts(path: Path, parts: Iterable[np.ndarray], dtype, length: int) -> None:
     """Save the concatenation of ``parts`` as one ``.npy`` of ``length`` items
     without building it in memory: the header first, then each part's bytes.
@@ -131,19 +178,37 @@ def save_npy_parts(path: Path, parts: Iterable[np.ndarray], dtype, length: int) 
     ``parts`` is consumed once (a generator of memory-mapped unit files keeps
     one part resident at a time). A total other than ``length`` is an error.
     """
-    dtype = np.dtype(dtype)
-    if dtype == object:
-        raise TypeError("object arrays are not stored (they would need pickle)")
-    n = 0
-    with open(path, "wb") as fh:
-        np.lib.format.write_array_header_1_0(
-            fh, {"descr": np.lib.format.dtype_to_descr(dtype), "fortran_order": False, "shape": (int(length),)})
+    with NpyStream(path, dtype, length) as out:
         for part in parts:
-            a = np.ascontiguousarray(part, dtype)
-            fh.write(memoryview(a).cast("B"))
-            n += len(a)
-    if n != length:
-        raise ValueError(f"{path}: wrote {n} items, expected {length}")
+            out.write(part)
+
+
+def npy_blocks(path: Path, block: int, lo: int = 0, hi: int | None = None):
+    """Yield ``(start, array)`` for consecutive blocks of at most ``block`` items of
+    the 1-d ``.npy`` file at ``path``, over positions ``[lo, hi)``.
+
+    The blocks are read with plain file reads, not mapped: a sweep over a file
+    larger than memory keeps one block resident, and the pages it went through stay
+    in the page cache, not in this process's resident set.
+    """
+    with open(path, "rb") as fh:
+        version = np.lib.format.read_magic(fh)
+        read_header = (np.lib.format.read_array_header_1_0 if version == (1, 0)
+                       else np.lib.format.read_array_header_2_0)
+        shape, _, dtype = read_header(fh)
+        if len(shape) != 1 or dtype.hasobject:
+            raise StoreError(f"{path} is not a 1-d numeric array")
+        start = fh.tell()
+        n = shape[0] if hi is None else min(int(hi), shape[0])
+        pos = int(lo)
+        fh.seek(start + pos * dtype.itemsize)
+        while pos < n:
+            k = min(int(block), n - pos)
+            a = np.fromfile(fh, dtype=dtype, count=k)
+            if len(a) != k:
+                raise StoreError(f"{path} is shorter than its header says")
+            yield pos, a
+            pos += k
 
 
 def load_npy(path: Path, mmap: bool = False) -> np.ndarray:
@@ -155,6 +220,38 @@ def load_npy(path: Path, mmap: bool = False) -> np.ndarray:
             raise StoreError(f"{path} holds Python objects (pickle) and is not loaded; it was not written by "
                              f"cliquewise: delete the run directory and start again") from None
         raise
+
+
+def resident_bytes() -> int:
+    """This process's resident set in bytes (Linux ``/proc/self/statm``; 0 elsewhere)."""
+    try:
+        with open("/proc/self/statm", "rb") as fh:
+            return int(fh.read().split()[1]) * _PAGE
+    except (OSError, IndexError, ValueError):
+        return 0
+
+
+_PAGE = os.sysconf("SC_PAGE_SIZE") if hasattr(os, "sysconf") else 4096
+
+
+def drop_mapped_pages(arrays: Iterable) -> None:
+    """Take the pages of memory-mapped ``.npy`` arrays out of this process's resident set.
+
+    The files stay in the operating system's page cache, so the next access maps
+    a page again cheaply, from memory. A kernel sweeping random rows of a file
+    larger than its memory budget calls this whenever its resident set passes the
+    budget (mapped pages count as resident, and a worker is judged by its resident
+    set). Arrays that are not file mappings are skipped.
+    """
+    import mmap
+
+    for a in arrays:
+        m = getattr(a, "_mmap", None)  # numpy.memmap keeps its mmap.mmap here
+        if m is not None and hasattr(m, "madvise"):
+            try:
+                m.madvise(mmap.MADV_DONTNEED)
+            except (OSError, ValueError):
+                pass
 
 
 def describe_outputs(folder: Path) -> dict[str, dict]:

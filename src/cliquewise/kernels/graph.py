@@ -32,6 +32,8 @@ from numba.extending import intrinsic
 __all__ = [
     "csr_from_edges",
     "csr_from_edges_reference",
+    "csr_rows_scatter",
+    "csr_rows_sort",
     "find_edge",
     "find_edge_reference",
     "intersect_sorted",
@@ -147,6 +149,66 @@ def csr_from_edges(n, u, v, lev, nbr_dtype=None):
     eid = np.empty(m2, np.int64)
     _csr_fill(n, u, v, lev, indptr, nbr, nlev, eid)
     return indptr, nbr, nlev, eid
+
+
+@numba.njit(nogil=True, cache=True)
+def csr_rows_scatter(u, v, lev, e0, a, b, cursor, nbr, nlev, eid):
+    """Scatter the entries of rows ``[a, b)`` from one block of edges.
+
+    For the edges ``u[i] < v[i]`` (positions ``e0 + i`` in the whole edge list) the
+    entry ``u -> v`` goes to row ``u`` and ``v -> u`` to row ``v`` when that row lies
+    in ``[a, b)``; ``cursor[x - a]`` is the next free slot of row ``x`` in the
+    output arrays (advanced here). Rows come out unsorted: see :func:`csr_rows_sort`.
+    This and the sort build a CSR a range of rows at a time, with memory for those
+    rows only (:func:`csr_from_edges` builds it whole).
+    """
+    for i in range(u.shape[0]):
+        x = u[i]
+        y = v[i]
+        if a <= x < b:
+            p = cursor[x - a]
+            nbr[p] = y
+            nlev[p] = lev[i]
+            eid[p] = e0 + i
+            cursor[x - a] = p + 1
+        if a <= y < b:
+            p = cursor[y - a]
+            nbr[p] = x
+            nlev[p] = lev[i]
+            eid[p] = e0 + i
+            cursor[y - a] = p + 1
+
+
+@numba.njit(nogil=True, cache=True)
+def csr_rows_sort(indptr, nbr, nlev, eid):
+    """Sort each row ``indptr[x]:indptr[x + 1]`` by neighbour, carrying ``nlev`` and
+    ``eid`` along (neighbours are distinct within a row). Short rows by insertion,
+    long rows by an argsort."""
+    for x in range(indptr.shape[0] - 1):
+        lo = indptr[x]
+        hi = indptr[x + 1]
+        if hi - lo <= 32:
+            for i in range(lo + 1, hi):
+                key = nbr[i]
+                kl = nlev[i]
+                ke = eid[i]
+                j = i - 1
+                while j >= lo and nbr[j] > key:
+                    nbr[j + 1] = nbr[j]
+                    nlev[j + 1] = nlev[j]
+                    eid[j + 1] = eid[j]
+                    j -= 1
+                nbr[j + 1] = key
+                nlev[j + 1] = kl
+                eid[j + 1] = ke
+        else:
+            order = np.argsort(nbr[lo:hi])
+            nb = nbr[lo:hi][order]
+            nl = nlev[lo:hi][order]
+            ne = eid[lo:hi][order]
+            nbr[lo:hi] = nb
+            nlev[lo:hi] = nl
+            eid[lo:hi] = ne
 
 
 # --------------------------------------------------------------------------

@@ -9,7 +9,8 @@ pair must be an edge.
 One pass over the candidates (:func:`pair_edges`) looks every pair up once and
 writes its edge id into a pair buffer, in candidate order; a counting sort by edge
 (:func:`count_rows`, :func:`starts_from_counts`, :func:`scatter_rows`) then
-scatters the candidate ids into their rows. The enumerate stage runs the lookups
+scatters the candidate ids into their rows (``*_in``: the rows of one range of
+edges, for an incidence built a range at a time). The enumerate stage runs the lookups
 inside its work units, right after the search that found the candidates (their
 rows are still in cache), and the counting sort once over all units. The scatter
 visits the pairs in candidate order, so each row comes out ascending without a
@@ -26,8 +27,8 @@ import numpy as np
 
 from cliquewise.kernels.graph import bit_length, prefetch_member_rows
 
-__all__ = ["candidate_pairs", "count_rows", "incidence", "incidence_reference", "pair_edges",
-           "scatter_rows", "starts_from_counts"]
+__all__ = ["candidate_pairs", "count_rows", "count_rows_in", "incidence", "incidence_reference", "pair_edges",
+           "scatter_rows", "scatter_rows_in", "starts_from_counts"]
 
 
 @numba.njit(nogil=True, cache=True)
@@ -100,6 +101,30 @@ def scatter_rows(ptr, pair_e, k0, cnt, inc_cand):
             e1 = pair_e[t] + 1
             inc_cand[cnt[e1]] = k0 + k
             cnt[e1] += 1
+            t += 1
+
+
+@numba.njit(nogil=True, cache=True)
+def count_rows_in(pair_e, lo, hi, cnt):
+    """:func:`count_rows` for the edges ``[lo, hi)`` only: ``cnt[e - lo + 2] += 1``."""
+    for t in range(pair_e.shape[0]):
+        e = pair_e[t]
+        if lo <= e < hi:
+            cnt[e - lo + 2] += 1
+
+
+@numba.njit(nogil=True, cache=True)
+def scatter_rows_in(ptr, pair_e, k0, lo, hi, cnt, inc_cand):
+    """:func:`scatter_rows` for the edges ``[lo, hi)`` only (rows numbered from ``lo``)."""
+    t = 0
+    for k in range(ptr.shape[0] - 1):
+        s = ptr[k + 1] - ptr[k]
+        for _ in range(s * (s - 1) // 2):
+            e = pair_e[t]
+            if lo <= e < hi:
+                e1 = e - lo + 1
+                inc_cand[cnt[e1]] = k0 + k
+                cnt[e1] += 1
             t += 1
 
 

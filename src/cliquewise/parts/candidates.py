@@ -23,9 +23,16 @@ import numpy as np
 import pyarrow.parquet as pq
 
 from cliquewise.kernels.cliques import level_min, sweep_candidates
-from cliquewise.kernels.graph import csr_from_edges
-from cliquewise.kernels.incidence import candidate_pairs, count_rows, scatter_rows, starts_from_counts
-from cliquewise.store import load_npy, save_npy, save_npy_parts
+from cliquewise.kernels.incidence import candidate_pairs, count_rows_in, scatter_rows_in, starts_from_counts
+from cliquewise.store import (
+    NpyStream,
+    drop_mapped_pages,
+    load_npy,
+    npy_blocks,
+    resident_bytes,
+    save_npy,
+    save_npy_parts,
+)
 
 GRAPH_FILES = ("indptr", "nbr", "nlev", "eid", "u", "v", "lev", "weight")
 STATUS_TEXT = {1: "clique count", 2: "work", 3: "time"}
@@ -35,19 +42,33 @@ def choose_levels(weights: np.ndarray, spec) -> np.ndarray:
     """Sorted thresholds. The smallest weight is always a threshold, so every edge is covered.
 
     ``"all"``: every distinct weight. An integer ``n``: ``n`` quantiles of the edge
-    weights (fewer when weights repeat). A list: those thresholds plus the minimum.
+    weights (numpy's ``"lower"`` quantiles; fewer when weights repeat). A list:
+    those thresholds plus the minimum.
     """
-    w = np.asarray(weights, np.float64)
-    if w.size == 0:
+    values, counts = np.unique(np.asarray(weights, np.float64), return_counts=True)
+    return levels_from_counts(values, counts, spec)
+
+
+def levels_from_counts(values: np.ndarray, counts: np.ndarray, spec) -> np.ndarray:
+    """:func:`choose_levels` from the distinct weights (ascending) and how often each occurs.
+
+    Exports count interactions, so the distinct weights are few next to the edges:
+    the levels of an edge store of any size are chosen from this summary.
+    """
+    values = np.asarray(values, np.float64)
+    if values.size == 0:
         return np.empty(0, np.float64)
-    wmin = float(w.min())
+    wmin, wmax = float(values[0]), float(values[-1])
     if spec == "all":
-        return np.unique(w)
+        return values.copy()
     if isinstance(spec, int):
-        q = np.quantile(w, np.linspace(0.0, 1.0, spec, endpoint=False), method="lower")
-        return np.unique(np.concatenate([[wmin], q]))
+        n = int(np.sum(counts))
+        q = np.linspace(0.0, 1.0, spec, endpoint=False)
+        rank = np.floor((n - 1) * q).astype(np.int64)  # numpy's "lower" quantile: the floor((n-1) q)-th smallest
+        pos = np.searchsorted(np.cumsum(counts), rank, side="right")
+        return np.unique(np.concatenate([[wmin], values[pos]]))
     levels = np.asarray(sorted(float(x) for x in spec), np.float64)
-    levels = levels[(levels > wmin) & (levels <= w.max())]
+    levels = levels[(levels > wmin) & (levels <= wmax)]
     return np.unique(np.concatenate([[wmin], levels]))
 
 
@@ -56,46 +77,125 @@ def level_index(weights: np.ndarray, levels: np.ndarray) -> np.ndarray:
     return (np.searchsorted(levels, weights, side="right") - 1).astype(np.int32)
 
 
-def build_graph(edge_files: list, n_nodes: int, levels_spec, out: Path) -> dict:
-    """Read the edge store, choose levels, build the CSR; write ``.npy`` files into ``out``."""
+READ_BLOCK = 1 << 22  # edges per block when a step streams the edge arrays
+
+
+def build_graph(edge_files: list, n_nodes: int, levels_spec, out: Path, budget: int | None = None) -> dict:
+    """Read the edge store, choose levels, build the CSR; write ``.npy`` files into ``out``.
+
+    The edge columns are streamed into ``u``/``v``/``weight.npy`` file by file, the
+    levels chosen from the distinct weights, and the CSR rows built a range of rows
+    at a time, each range holding at most ``budget`` bytes of rows (``None``: all
+    rows at once). The result is the same whatever the budget: the CSR of
+    :func:`~cliquewise.kernels.graph.csr_from_edges`.
+    """
     t_cpu = time.thread_time()
-    us, vs, ws = [], [], []
-    for f in edge_files:
-        t = pq.read_table(f, columns=["u", "v", "weight"])
-        us.append(t.column("u").to_numpy())
-        vs.append(t.column("v").to_numpy())
-        ws.append(t.column("weight").to_numpy())
-    u = np.concatenate(us) if us else np.empty(0, np.int64)
-    v = np.concatenate(vs) if vs else np.empty(0, np.int64)
-    w = np.concatenate(ws) if ws else np.empty(0, np.float64)
-    del us, vs, ws
-    levels = choose_levels(w, levels_spec)
-    lev = level_index(w, levels)
-    indptr, nbr, nlev, eid = csr_from_edges(n_nodes, u, v, lev)
     out.mkdir(parents=True, exist_ok=True)
-    for name, arr in zip(GRAPH_FILES, (indptr, nbr, nlev, eid, u, v, lev, w)):
-        save_npy(out / f"{name}.npy", arr)
+    n_edges = sum(pq.read_metadata(f).num_rows for f in edge_files)
+    for col, dtype in (("u", np.int64), ("v", np.int64), ("weight", np.float64)):
+        save_npy_parts(out / f"{col}.npy", (pq.read_table(f, columns=[col]).column(0).to_numpy() for f in edge_files),
+                       dtype, n_edges)
+    values, counts = np.empty(0, np.float64), np.empty(0, np.int64)
+    for _, w in npy_blocks(out / "weight.npy", READ_BLOCK):
+        bv, bc = np.unique(w, return_counts=True)
+        values, inv = np.unique(np.concatenate([values, bv]), return_inverse=True)
+        counts = np.bincount(inv, weights=np.concatenate([counts, bc]), minlength=len(values)).astype(np.int64)
+    levels = levels_from_counts(values, counts, levels_spec)
+    save_npy_parts(out / "lev.npy", (level_index(w, levels) for _, w in npy_blocks(out / "weight.npy", READ_BLOCK)),
+                   np.int32, n_edges)
+    degree = np.zeros(n_nodes, np.int64)
+    for col in ("u", "v"):
+        for _, x in npy_blocks(out / f"{col}.npy", READ_BLOCK):
+            degree += np.bincount(x, minlength=n_nodes)
+    indptr = np.zeros(n_nodes + 1, np.int64)
+    np.cumsum(degree, out=indptr[1:])
+    del degree
+    ranges = _row_ranges(indptr, budget, np.dtype(np.int32 if n_nodes < 2**31 else np.int64))
+    _csr_by_ranges(out, indptr, ranges, n_edges)
+    save_npy(out / "indptr.npy", indptr)
     save_npy(out / "levels.npy", levels)
-    return {"edges": int(len(u)), "levels": int(len(levels)), "cpu": time.thread_time() - t_cpu}
+    return {"edges": int(n_edges), "levels": int(len(levels)), "row_ranges": len(ranges),
+            "cpu": time.thread_time() - t_cpu}
+
+
+def _row_ranges(indptr: np.ndarray, budget: int | None, nbr_dtype) -> list[tuple[int, int]]:
+    """Consecutive row ranges whose entries fit in ``budget`` bytes (a row never splits)."""
+    n = len(indptr) - 1
+    if budget is None or n == 0:
+        return [(0, n)] if n else []
+    per_entry = nbr_dtype.itemsize + 4 + 8  # nbr, nlev, eid
+    cap = max(1, int(budget) // per_entry)
+    ranges, a = [], 0
+    while a < n:
+        b = int(np.searchsorted(indptr, indptr[a] + cap, side="right")) - 1
+        b = min(n, max(b, a + 1))
+        ranges.append((a, b))
+        a = b
+    return ranges
+
+
+def _csr_by_ranges(out: Path, indptr: np.ndarray, ranges, n_edges: int) -> None:
+    """Write ``nbr``/``nlev``/``eid.npy``, one range of rows at a time, each range
+    filled from one streaming pass over ``u``/``v``/``lev.npy``."""
+    from cliquewise.kernels.graph import csr_rows_scatter, csr_rows_sort
+
+    n = len(indptr) - 1
+    nbr_dtype = np.int32 if n < 2**31 else np.int64
+    m2 = 2 * n_edges
+    with NpyStream(out / "nbr.npy", nbr_dtype, m2) as f_nbr, NpyStream(out / "nlev.npy", np.int32, m2) as f_lev, \
+            NpyStream(out / "eid.npy", np.int64, m2) as f_eid:
+        for a, b in ranges:
+            base = int(indptr[a])
+            m = int(indptr[b]) - base
+            nbr = np.empty(m, nbr_dtype)
+            nlev = np.empty(m, np.int32)
+            eid = np.empty(m, np.int64)
+            cursor = indptr[a:b] - base
+            blocks = zip(npy_blocks(out / "u.npy", READ_BLOCK), npy_blocks(out / "v.npy", READ_BLOCK),
+                         npy_blocks(out / "lev.npy", READ_BLOCK))
+            for (e0, u), (_, v), (_, lev) in blocks:
+                csr_rows_scatter(u, v, lev, np.int64(e0), np.int64(a), np.int64(b), cursor, nbr, nlev, eid)
+            csr_rows_sort(indptr[a:b + 1] - base, nbr, nlev, eid)
+            f_nbr.write(nbr)
+            f_lev.write(nlev)
+            f_eid.write(eid)
+            del nbr, nlev, eid, cursor
 
 
 def load_graph(folder: Path) -> dict:
     return {name: load_npy(folder / f"{name}.npy", mmap=True) for name in GRAPH_FILES}
 
 
+TRIM_BLOCK = 64  # edges per block when the graph's pages are trimmed: what one block maps stays well inside a budget
+
+
 def enumerate_unit(graph_dir: str, lo: int, hi: int, max_cliques: int, max_seconds: float,
-                   out: Path, tag: str, block: int = 2048) -> dict:
-    """Candidates first seen at edges ``[lo, hi)``; writes ``{tag}.ptr/.nodes/.lmax/.lmin.npy``."""
+                   out: Path, tag: str, block: int = 2048, trim: int | None = None) -> dict:
+    """Candidates first seen at edges ``[lo, hi)``; writes ``{tag}.ptr/.nodes/.lmax/.lmin/.pairs.npy``.
+
+    The CSR is memory-mapped. With ``trim`` (bytes), its pages are dropped from this
+    process's resident set whenever that passes ``trim`` between blocks, so a graph
+    larger than a worker's memory is swept within it (see
+    :func:`~cliquewise.store.drop_mapped_pages`). Blocks are then
+    :data:`TRIM_BLOCK` edges: the rows a block reads lie all over the files, and
+    each first touch can map a large piece of a file (the operating system maps
+    whole cached folios), so a block of 2048 edges can map most of the graph.
+    """
+    if trim:
+        block = min(block, TRIM_BLOCK)
     t0 = time.perf_counter()
     t_cpu = time.thread_time()
     g = load_graph(Path(graph_dir))
-    ptrs, nodes_l, lmax_l = [], [], []
+    ptrs, nodes_l, lmax_l, lmin_l, pairs_l = [], [], [], [], []
     total, work, offset = 0, 0, 0
     status, where = 0, lo
     max_work = np.int64(max(1, max_cliques) * 64)
     deadline = t0 + max_seconds
     at_node, at_level = -1, -1
+    n_edges = len(g["u"])
     for s, e in _blocks(Path(graph_dir), lo, hi, block):
+        if trim and resident_bytes() > trim:
+            drop_mapped_pages(g.values())
         (ptr, nodes, lmax, st, wd), allow = _sweep_within(g, s, e, max_cliques - total, max_work - work, deadline)
         work += int(wd)
         if st != 0:
@@ -103,7 +203,9 @@ def enumerate_unit(graph_dir: str, lo: int, hi: int, max_cliques: int, max_secon
             where, at_node, at_level = _stop_point(g, s, e, max_cliques - total, allow, st, ptr, nodes, lmax)
             break
         k = len(ptr) - 1
-        if k:
+        if k:  # the level where each is still maximal, and its pairs' edge ids, while its rows are in cache
+            lmin_l.append(level_min(g["indptr"], g["nbr"], g["nlev"], ptr, nodes).astype(np.int32))
+            pairs_l.append(candidate_pairs(g["indptr"], g["nbr"], g["eid"], ptr, nodes, n_edges))
             ptrs.append(ptr[1:] + offset)
             nodes_l.append(nodes)
             lmax_l.append(lmax)
@@ -118,19 +220,18 @@ def enumerate_unit(graph_dir: str, lo: int, hi: int, max_cliques: int, max_secon
     if status:
         result["cpu"] = time.thread_time() - t_cpu
         return result
-    ptr = np.concatenate([np.zeros(1, np.int64)] + ptrs) if ptrs else np.zeros(1, np.int64)
-    nodes = np.concatenate(nodes_l) if nodes_l else np.empty(0, np.int64)
-    lmax = np.concatenate(lmax_l).astype(np.int32) if lmax_l else np.empty(0, np.int32)
-    lmin = level_min(g["indptr"], g["nbr"], g["nlev"], ptr, nodes).astype(np.int32)
-    pairs = candidate_pairs(g["indptr"], g["nbr"], g["eid"], ptr, nodes, len(g["u"]))
     out.mkdir(parents=True, exist_ok=True)
     files = []
-    for name, arr in (("ptr", ptr), ("nodes", nodes), ("lmax", lmax), ("lmin", lmin), ("pairs", pairs)):
+    arrays = (("ptr", np.int64, [np.zeros(1, np.int64)] + ptrs), ("nodes", np.int64, nodes_l),
+              ("lmax", np.int32, lmax_l), ("lmin", np.int32, lmin_l), ("pairs", np.int64 if n_edges >= 2**31 else np.int32, pairs_l))
+    for name, dtype, pieces in arrays:
         rel = f"{tag}.{name}.npy"
-        save_npy(out / rel, arr)
+        save_npy_parts(out / rel, pieces, dtype, sum(len(x) for x in pieces))
         files.append(rel)
+        if name == "pairs":
+            result["incidences"] = int(sum(len(x) for x in pieces))
+        pieces.clear()
     result["files"] = files
-    result["incidences"] = int(len(pairs))
     result["cpu"] = time.thread_time() - t_cpu
     return result
 
@@ -160,35 +261,44 @@ def direct_components(graph_dir: Path, comp: np.ndarray, comp_nodes: np.ndarray,
     treated this way (smaller ones cost the sweep next to nothing).
     """
     g = load_graph(graph_dir)
-    u = np.asarray(g["u"])
-    lev = np.asarray(g["lev"])
+    n_edges = len(g["u"])
     is_clique = (comp_nodes >= max(2, min_size)) & (comp_edges == comp_nodes * (comp_nodes - 1) // 2)
-    if not is_clique.any() or len(u) == 0:
+    if not is_clique.any() or n_edges == 0:
         return {"direct": 0, "skipped_edges": 0}
-    ce = comp[u]
     n_comp = len(comp_nodes)
     lmin = np.full(n_comp, np.iinfo(np.int32).max, np.int64)
     lmax = np.full(n_comp, -1, np.int64)
-    np.minimum.at(lmin, ce, lev)
-    np.maximum.at(lmax, ce, lev)
+    edge_blocks = zip(npy_blocks(graph_dir / "u.npy", READ_BLOCK), npy_blocks(graph_dir / "lev.npy", READ_BLOCK))
+    for (_, u), (_, lev) in edge_blocks:  # levels of the clique components' edges, a block at a time
+        ce = comp[u]
+        inside = is_clique[ce]
+        np.minimum.at(lmin, ce[inside], lev[inside])
+        np.maximum.at(lmax, ce[inside], lev[inside])
     direct = np.flatnonzero(is_clique & (lmin == lmax))
     if len(direct) == 0:
         return {"direct": 0, "skipped_edges": 0}
     chosen = np.zeros(n_comp, bool)
     chosen[direct] = True
-    skip = chosen[ce]
-    save_npy(graph_dir / "skip.npy", skip)
+    skipped = [0]
+
+    def skip_blocks():
+        for _, u in npy_blocks(graph_dir / "u.npy", READ_BLOCK):
+            sk = chosen[comp[u]]
+            skipped[0] += int(sk.sum())
+            yield sk
+
+    save_npy_parts(graph_dir / "skip.npy", skip_blocks(), bool, n_edges)
     order = np.argsort(comp, kind="stable")
     members = order[chosen[comp[order]]]  # nodes of chosen components, grouped by component, ascending ids
     sizes = comp_nodes[direct]
     ptr = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
     members = members.astype(np.int64)
-    pairs = candidate_pairs(g["indptr"], g["nbr"], g["eid"], ptr, members, len(u))
+    pairs = candidate_pairs(g["indptr"], g["nbr"], g["eid"], ptr, members, n_edges)
     out.mkdir(parents=True, exist_ok=True)
     for name, arr in (("ptr", ptr), ("nodes", members), ("lmax", lmax[direct].astype(np.int32)),
                       ("lmin", np.zeros(len(direct), np.int32)), ("pairs", pairs)):
         save_npy(out / f"direct.{name}.npy", arr)
-    return {"direct": int(len(direct)), "skipped_edges": int(skip.sum())}
+    return {"direct": int(len(direct)), "skipped_edges": skipped[0]}
 
 
 # First work allowance of a block: about 0.1 s at the kernel's ~5e7 work units per
@@ -252,7 +362,8 @@ def _stop_point(g: dict, s: int, e: int, cliques_left: int, work_left: int, stat
 UNIT_ARRAYS = ("ptr", "nodes", "lmax", "lmin", "pairs")
 
 
-def collect_units(folder: Path, tags: list[str], out: Path, n_edges: int, part: str = "all") -> dict:
+def collect_units(folder: Path, tags: list[str], out: Path, n_edges: int, part: str = "all",
+                  budget: int | None = None) -> dict:
     """Concatenate unit outputs in unit order into the candidate table files, and
     build the edge -> candidate CSR from the units' pairs.
 
@@ -260,6 +371,9 @@ def collect_units(folder: Path, tags: list[str], out: Path, n_edges: int, part: 
     and ``inc_ptr``, ``inc_cand`` (``part="incidence"``; int32 while there are fewer
     than ``2**31`` candidates); ``part="all"`` does both. The two halves read
     different unit files and write different outputs, so they can run side by side.
+    Unit files are read one at a time and the outputs written as they grow. The
+    incidence is built a range of edges at a time, each range holding at most
+    ``budget`` bytes (``None``: one range); the result does not depend on it.
     """
     t_cpu = time.thread_time()
     info: dict = {}
@@ -269,43 +383,86 @@ def collect_units(folder: Path, tags: list[str], out: Path, n_edges: int, part: 
         for tag in tags:
             yield load_npy(folder / f"{tag}.{name}.npy", mmap=True)
 
-    ptr = _joined_ptr([load_npy(folder / f"{tag}.ptr.npy") for tag in tags])
-    n_cand = len(ptr) - 1
+    unit_k = [len(load_npy(folder / f"{tag}.ptr.npy", mmap=True)) - 1 for tag in tags]
+    n_cand = int(sum(unit_k))
     if part in ("all", "tables"):
-        save_npy(out / "cand_ptr.npy", ptr)
+        largest, rows = 0, 0
+
+        def joined_ptr():  # the units' candidate pointers as one pointer array
+            nonlocal largest, rows
+            yield np.zeros(1, np.int64)
+            for ptr in each("ptr"):
+                ptr = np.asarray(ptr, np.int64)
+                if len(ptr) > 1:
+                    largest = max(largest, int(np.diff(ptr).max()))
+                yield ptr[1:] + rows
+                rows += int(ptr[-1])
+
+        save_npy_parts(out / "cand_ptr.npy", joined_ptr(), np.int64, n_cand + 1)
         for name, dtype, file in (("nodes", np.int64, "cand_nodes"), ("lmax", np.int32, "level_max"),
                                   ("lmin", np.int32, "level_min")):
-            save_npy_parts(out / f"{file}.npy", each(name), dtype, int(ptr[-1]) if name == "nodes" else n_cand)
-        sizes = np.diff(ptr)
-        info.update(candidates=int(n_cand), member_rows=int(ptr[-1]),
-                    largest_candidate=int(sizes.max()) if len(sizes) else 0)
+            save_npy_parts(out / f"{file}.npy", each(name), dtype, rows if name == "nodes" else n_cand)
+        info.update(candidates=n_cand, member_rows=rows, largest_candidate=largest)
     if part in ("all", "incidence"):
-        cnt = np.zeros(n_edges + 2, np.int64)
-        for pairs in each("pairs"):
-            count_rows(pairs, cnt)
-        starts_from_counts(cnt, np.int64(n_edges))
-        n_inc = int(cnt[n_edges + 1]) if n_edges else 0
-        inc_cand = np.empty(n_inc, np.int32 if n_cand < 2**31 else np.int64)
-        k0 = 0
-        for tag, pairs in zip(tags, each("pairs")):
-            uptr = load_npy(folder / f"{tag}.ptr.npy")
-            scatter_rows(uptr, pairs, np.int64(k0), cnt, inc_cand)
-            k0 += len(uptr) - 1
-        inc_ptr = cnt[: n_edges + 1]
-        save_npy(out / "inc_ptr.npy", inc_ptr)
-        save_npy(out / "inc_cand.npy", inc_cand)
-        info.update(incidences=n_inc, uncovered_edges=int((np.diff(inc_ptr) == 0).sum()))
+        ranges, n_inc = _edge_ranges(each("pairs"), n_edges, budget)
+        cand_dtype = np.int32 if n_cand < 2**31 else np.int64
+        uncovered = 0
+        with NpyStream(out / "inc_ptr.npy", np.int64, n_edges + 1) as f_ptr, \
+                NpyStream(out / "inc_cand.npy", cand_dtype, n_inc) as f_cand:
+            base = 0
+            f_ptr.write(np.zeros(1, np.int64))
+            for lo, hi in ranges:
+                cnt = np.zeros(hi - lo + 2, np.int64)
+                for pairs in each("pairs"):
+                    count_rows_in(pairs, np.int64(lo), np.int64(hi), cnt)
+                starts_from_counts(cnt, np.int64(hi - lo))
+                m = int(cnt[hi - lo + 1])
+                inc_cand = np.empty(m, cand_dtype)
+                k0 = 0
+                for tag, pairs in zip(tags, each("pairs")):
+                    uptr = load_npy(folder / f"{tag}.ptr.npy")
+                    scatter_rows_in(uptr, pairs, np.int64(k0), np.int64(lo), np.int64(hi), cnt, inc_cand)
+                    k0 += len(uptr) - 1
+                rows_end = cnt[1: hi - lo + 1]  # end of each row of the range = start of the next
+                uncovered += int(np.count_nonzero(np.diff(cnt[: hi - lo + 1]) == 0))
+                f_ptr.write(rows_end + base)
+                f_cand.write(inc_cand)
+                base += m
+                del cnt, inc_cand
+        info.update(incidences=n_inc, uncovered_edges=uncovered, incidence_ranges=len(ranges))
     info["cpu"] = time.thread_time() - t_cpu
     return info
 
 
-def _joined_ptr(ptrs: list[np.ndarray]) -> np.ndarray:
-    """The units' candidate pointers as one pointer array."""
-    out, offset = [np.zeros(1, np.int64)], 0
-    for ptr in ptrs:
-        out.append(np.asarray(ptr[1:], np.int64) + offset)
-        offset += int(ptr[-1])
-    return np.concatenate(out)
+INC_BUCKET = 1 << 16  # edges per bucket when the incidence is cut into ranges
+
+
+def _edge_ranges(pair_files, n_edges: int, budget: int | None) -> tuple[list[tuple[int, int]], int]:
+    """Edge ranges ``[lo, hi)`` whose incidence rows fit in ``budget`` bytes, and the total.
+
+    One pass over the pairs counts incidences per bucket of :data:`INC_BUCKET`
+    edges; ranges are whole buckets (a bucket larger than the budget is a range).
+    """
+    if budget is None:
+        total = sum(len(pairs) for pairs in pair_files)
+        return ([(0, n_edges)] if n_edges else []), total
+    n_buckets = max(1, -(-n_edges // INC_BUCKET))
+    per_bucket = np.zeros(n_buckets, np.int64)
+    for pairs in pair_files:
+        per_bucket += np.bincount(np.asarray(pairs) // INC_BUCKET, minlength=n_buckets)
+    total = int(per_bucket.sum())
+    if n_edges == 0:
+        return [], total
+    # bytes of a range: 8 per incidence (the id, and room for the unit file being read), 8 per edge (row counter)
+    cost = per_bucket * 8 + np.minimum(INC_BUCKET, n_edges - np.arange(n_buckets) * INC_BUCKET) * 8
+    ranges, b = [], 0
+    csum = np.concatenate([[0], np.cumsum(cost)])
+    while b < n_buckets:
+        c = int(np.searchsorted(csum, csum[b] + int(budget), side="right")) - 1
+        c = min(n_buckets, max(c, b + 1))
+        ranges.append((b * INC_BUCKET, min(n_edges, c * INC_BUCKET)))
+        b = c
+    return ranges, total
 
 
 def plan_units(n_edges: int, edges_per_unit: int) -> list[tuple[int, int]]:

@@ -25,7 +25,7 @@ import pyarrow.parquet as pq
 
 from cliquewise.parts import candidates as parts
 from cliquewise.stage import InputError, StageContext
-from cliquewise.store import RunStore, load_npy
+from cliquewise.store import RunStore, load_npy, npy_blocks
 
 NAME = "enumerate"
 UPSTREAM = ["ingest", "split"]
@@ -49,10 +49,12 @@ def run(ctx: StageContext) -> dict:
     n_nodes = pq.read_metadata(ingest_dir / "labels.parquet").num_rows
     edge_files = sorted((ingest_dir / "edges").glob("part-*.parquet"))
     gdir = work / "graph"
+    budget = ctx.engine.task_memory()  # None: no limit; else the pieces of each step are sized by it
+    piece = budget // 3 if budget else None
 
     with ctx.substep("graph") as step:
         if not RunStore.unit_done(work, "graph"):
-            info = ctx.engine.submit(parts.build_graph, edge_files, n_nodes, p["levels"], gdir).result()
+            info = ctx.engine.submit(parts.build_graph, edge_files, n_nodes, p["levels"], gdir, piece).result()
             ctx.worker_cpu += info.pop("cpu", 0.0)
             RunStore.unit_commit(work, "graph", [f"graph/{f}.npy" for f in parts.GRAPH_FILES + ("levels",)], info)
         info = RunStore.unit_info(work, "graph")
@@ -82,7 +84,7 @@ def run(ctx: StageContext) -> dict:
     with ctx.substep("cliques") as step:
         todo = [(lo, hi, tag) for (lo, hi), tag in zip(units, tags) if not RunStore.unit_done(work, f"cl-{tag}")]
         results = ctx.engine.map(_unit, todo, str(gdir), p["max_cliques"], p["max_seconds"], str(work),
-                                 desc="enumerate: cliques")
+                                 budget * 2 // 5 if budget else None, desc="enumerate: cliques")
         ctx.worker_cpu += sum(r.get("cpu", 0.0) for r in results)
         bad = [r for r in results if r["status"]]
         if bad:
@@ -91,7 +93,7 @@ def run(ctx: StageContext) -> dict:
         step.count(edges=n_edges, units=len(todo), candidates=sum(s.get("candidates", 0) for s in unit_stats))
 
     with ctx.substep("collect") as step:  # candidates in unit order, and the incidence by a counting sort
-        halves = ctx.engine.map(_collect, ["tables", "incidence"], work / "cl", tags_all, work, n_edges)
+        halves = ctx.engine.map(_collect, ["tables", "incidence"], work / "cl", tags_all, work, n_edges, piece)
         cinfo = {**halves[0], **halves[1], "cpu": halves[0]["cpu"] + halves[1]["cpu"]}
         step.count(candidates=cinfo["candidates"], incidences=cinfo["incidences"])
         ctx.worker_cpu += cinfo.pop("cpu", 0.0)
@@ -104,8 +106,12 @@ def run(ctx: StageContext) -> dict:
     shutil.move(str(gdir / "levels.npy"), str(work / "levels.npy"))
     shutil.move(str(gdir / "weight.npy"), str(work / "weight.npy"))
     shutil.rmtree(gdir, ignore_errors=True)
-    sizes = np.diff(load_npy(work / "cand_ptr.npy"))
-    hist = np.bincount(sizes) if len(sizes) else np.zeros(0, np.int64)
+    hist = np.zeros(cinfo["largest_candidate"] + 1, np.int64)
+    last = None
+    for _, ptr in npy_blocks(work / "cand_ptr.npy", parts.READ_BLOCK):
+        sizes = np.diff(ptr, prepend=ptr[:1] if last is None else last)
+        hist += np.bincount(sizes[1:] if last is None else sizes, minlength=len(hist))
+        last = ptr[-1:]
     return {
         "edges": n_edges,
         "levels": info["levels"],
@@ -115,20 +121,22 @@ def run(ctx: StageContext) -> dict:
         "incidences": cinfo["incidences"],
         "work": int(sum(s.get("work", 0) for s in unit_stats)),
         "direct_components": dinfo["direct"],
+        "graph_row_ranges": info.get("row_ranges", 1),
+        "incidence_ranges": cinfo.get("incidence_ranges", 1),
         "size_histogram": {str(s): int(c) for s, c in enumerate(hist) if c},
     }
 
 
-def _collect(part, folder, tags, out, n_edges):
-    return parts.collect_units(folder, tags, out, n_edges, part)
+def _collect(part, folder, tags, out, n_edges, budget):
+    return parts.collect_units(folder, tags, out, n_edges, part, budget)
 
 
-def _unit(item, graph_dir, max_cliques, max_seconds, work):
+def _unit(item, graph_dir, max_cliques, max_seconds, work, trim):
     from pathlib import Path
 
     lo, hi, tag = item
     work = Path(work)
-    res = parts.enumerate_unit(graph_dir, lo, hi, max_cliques, max_seconds, work / "cl", tag)
+    res = parts.enumerate_unit(graph_dir, lo, hi, max_cliques, max_seconds, work / "cl", tag, trim=trim)
     if not res["status"]:
         RunStore.unit_commit(work, f"cl-{tag}", [f"cl/{f}" for f in res["files"]],
                              {k: res[k] for k in ("lo", "hi", "candidates", "work", "seconds", "incidences")})
