@@ -9,7 +9,7 @@ import math
 
 import numpy as np
 import pytest
-from hypothesis import given, settings, strategies as st
+from hypothesis import HealthCheck, given, settings, strategies as st
 
 from cliquewise.kernels.em import em_step_reference
 from cliquewise.kernels.prefixtree import (
@@ -163,9 +163,7 @@ def test_check_tree_rejects_bad_arrays():
 @given(st.lists(st.integers(0, 60), max_size=300), st.booleans())
 def test_counting_sorts_equal_numpy_stable_argsort(keys, huge):
     # reference: numpy's stable argsort (the rank of each candidate in the list
-    # order is the inverse of argsort(-pairs, stable); order_by_key is argsort itself)
-    from cliquewise.kernels.prefixtree import order_by_key
-
+    # order is the inverse of argsort(-pairs, stable))
     pairs = np.array(keys, np.int64)
     if huge and len(pairs):
         pairs[0] = 10**9  # beyond the counting sort's range: the argsort route
@@ -173,5 +171,45 @@ def test_counting_sorts_equal_numpy_stable_argsort(keys, huge):
     want = np.empty(len(pairs), np.int64)
     want[np.argsort(-pairs, kind="stable")] = np.arange(len(pairs))
     np.testing.assert_array_equal(rank, want)
-    tops = np.array(keys, np.int64) - 1  # keys in [-1, 60)
-    np.testing.assert_array_equal(order_by_key(tops, np.int64(60)), np.argsort(tops, kind="stable"))
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(incidences(max_edges=60, max_cand=12), st.integers(1, 40), st.sampled_from([None, 1]))
+def test_parts_planned_in_blocks_cut_the_edges_by_top(tmp_path_factory, monkeypatch, inc, per_part, budget):
+    # reference: the edges in numpy's stable argsort order of their tops, cut at the
+    # first top boundary at or after each multiple of per_part incidences (the plan's
+    # definition, written with numpy), and the plain-Python tree twin for each part
+    from cliquewise.parts import fitting
+    from cliquewise.store import save_npy
+
+    ptr, cand, y, pairs = inc
+    d = tmp_path_factory.mktemp("plan")
+    for name, arr in (("inc_ptr", ptr), ("inc_cand", cand.astype(np.int32)), ("weight", y)):
+        save_npy(d / f"{name}.npy", arr)
+    rank = candidate_rank(pairs)
+    save_npy(d / "rank.npy", rank)
+    save_npy(d / "by_rank.npy", np.argsort(rank))
+    monkeypatch.setattr(fitting, "PLAN_BLOCK", 3)  # many blocks
+    planned = fitting.plan_tree_parts(str(d), str(d), per_part, budget)
+
+    top = row_tops(ptr, cand, rank)
+    order = np.argsort(top, kind="stable")
+    if len(order) == 0:
+        assert planned == []
+        return
+    cum = np.cumsum(np.diff(ptr)[order])
+    n_parts = max(1, -(-int(cum[-1]) // per_part))
+    first = np.flatnonzero(np.concatenate([[True], top[order][1:] != top[order][:-1]]))
+    want_at = np.searchsorted(cum, np.linspace(0, cum[-1], n_parts + 1)[1:-1], side="left") + 1
+    cuts = np.append(first, len(order))[np.searchsorted(first, want_at, side="left")]
+    bounds = np.unique(np.concatenate([[0], cuts, [len(order)]]))
+    want_parts = [np.sort(order[a:b]) for a, b in zip(bounds[:-1], bounds[1:])]
+    assert len(planned) == len(want_parts)
+    for part, want in zip(planned, want_parts):
+        np.testing.assert_array_equal(fitting.part_edges(str(d), part), want)
+        got = fitting.tree_part(part, str(d), str(d), budget=budget)
+        tree = [np.load(f) for f in fitting._files(d, part["index"], "g")]
+        ref = build_tree_reference(ptr, cand, y, want, rank)
+        for g, w in zip(tree, ref):
+            np.testing.assert_array_equal(g, w)
+        assert got["incidences"] == int(np.diff(ptr)[want].sum())

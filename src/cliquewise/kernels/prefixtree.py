@@ -35,6 +35,8 @@ Layout of a tree (one part of the edges):
 What lives here: :func:`candidate_rank` (the list order), :func:`row_tops` (each
 edge's first candidate in that order: edges grouped by it split the tree into
 independent subtrees, which is how the fit cuts it into parts),
+:func:`add_row_lengths` (incidences per top, to cut the parts) and
+:func:`gather_rows` (a part's rows copied into one block),
 :func:`build_tree` (from an edge -> candidate CSR and a set of edges),
 :func:`first_seen_order` (candidate numbering by first use, for locality),
 :func:`tree_sweep` (one EM sweep: :func:`tree_down`, numpy, :func:`tree_up`), :func:`tree_unsupported`
@@ -56,7 +58,8 @@ __all__ = [
     "row_tops",
     "check_tree",
     "first_seen_order",
-    "order_by_key",
+    "add_row_lengths",
+    "gather_rows",
     "tree_down",
     "tree_sweep",
     "tree_sweep_reference",
@@ -104,22 +107,6 @@ def _rank_descending(keys, top):
         rank[k] = cnt[b]
         cnt[b] += 1
     return rank
-
-
-@numba.njit(nogil=True, cache=True)
-def order_by_key(keys, n_keys):
-    """``argsort(keys, kind="stable")`` for keys in ``[-1, n_keys)``, by a counting sort."""
-    cnt = np.zeros(n_keys + 2, np.int64)
-    for i in range(keys.shape[0]):
-        cnt[keys[i] + 2] += 1
-    for b in range(n_keys + 1):
-        cnt[b + 1] += cnt[b]
-    order = np.empty(keys.shape[0], np.int64)
-    for i in range(keys.shape[0]):
-        b = keys[i] + 1
-        order[cnt[b]] = i
-        cnt[b] += 1
-    return order
 
 
 # --------------------------------------------------------------------------- build
@@ -247,6 +234,24 @@ def row_tops(inc_ptr, inc_cand, rank):
                 best = r
         out[i] = best
     return out
+
+
+@numba.njit(nogil=True, cache=True)
+def add_row_lengths(top, ptr, per_top):
+    """``per_top[top[i]] += ptr[i + 1] - ptr[i]``: the incidences of the edges of each top."""
+    for i in range(top.shape[0]):
+        per_top[top[i]] += ptr[i + 1] - ptr[i]
+
+
+@numba.njit(nogil=True, cache=True)
+def gather_rows(inc_ptr, inc_cand, edges, start, out):
+    """Copy the rows of ``edges`` (in that order) into ``out`` from position ``start``."""
+    q = start
+    for i in range(edges.shape[0]):
+        e = edges[i]
+        for j in range(inc_ptr[e], inc_ptr[e + 1]):
+            out[q] = inc_cand[j]
+            q += 1
 
 
 @numba.njit(nogil=True, cache=True)

@@ -22,9 +22,9 @@ from pathlib import Path
 
 import numpy as np
 
-from cliquewise.kernels.prefixtree import (build_tree, candidate_rank, check_tree, first_seen_order, order_by_key,
-                                            row_tops, tree_sweep, tree_unsupported)
-from cliquewise.store import load_npy, save_npy
+from cliquewise.kernels.prefixtree import (add_row_lengths, build_tree, candidate_rank, check_tree, first_seen_order,
+                                            gather_rows, row_tops, tree_sweep, tree_unsupported)
+from cliquewise.store import NpyStream, drop_mapped_pages, load_npy, npy_blocks, resident_bytes, save_npy
 
 TREE_ARRAYS = ("cand", "depth", "end", "ey")  # plus p*.strag.npy once localized
 
@@ -39,36 +39,50 @@ def part_size(total_incidences: int, incidences_per_part: int) -> int:
     return min(int(incidences_per_part), max(250_000, -(-int(total_incidences) // MIN_PARTS)))
 
 
-def plan_tree_parts(enum_dir: str, out_dir: str, rank, per_part: int) -> list[dict]:
-    """Order the edges by top and cut the order into parts of whole subtrees.
+PLAN_BLOCK = 1 << 22  # edges per block when the plan and the trees read the incidence
 
-    Writes ``{out_dir}/order.npy`` (edge ids by top, stable) and returns one record
-    per part with its slice ``[lo, hi)`` of that order. Cuts fall at the first top
-    boundary at or after each multiple of ``per_part`` incidences, so the parts
-    depend on the data only.
+
+def plan_tree_parts(enum_dir: str, out_dir: str, per_part: int, budget: int | None = None) -> list[dict]:
+    """Give every edge its top and cut the tops into parts of whole subtrees.
+
+    Writes ``{out_dir}/top.npy`` (each edge's top: the rank of the first candidate
+    of its list) and returns one record per part with its range of tops
+    ``[top_lo, top_hi)``. In the order of the edges by top (stable), the cuts fall
+    at the first top boundary at or after each multiple of ``per_part``
+    incidences, so the parts depend on the data only. The incidence is read a
+    block of edges at a time; with ``budget`` (bytes) its mapped pages are dropped
+    between blocks. Memory: the tops' incidence counts (8 bytes per candidate).
     """
     d = Path(enum_dir)
-    inc_ptr = load_npy(d / "inc_ptr.npy", mmap=True)
-    inc_cand = load_npy(d / "inc_cand.npy", mmap=True)
-    rank = np.asarray(rank)
-    top = row_tops(inc_ptr, inc_cand, rank)
-    order = order_by_key(top, np.int64(len(rank)))  # stable: edge order within a top
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    save_npy(out / "order.npy", order)
-    n_edges = len(order)
+    rank = load_npy(out / "rank.npy", mmap=True)
+    inc_ptr, inc_cand, _ = incidence_maps(enum_dir)
+    n_edges, n_cand = len(inc_ptr) - 1, len(rank)
+    per_top = np.zeros(n_cand, np.int64)  # incidences of the edges with each top
+    with NpyStream(out / "top.npy", np.int32 if n_cand < 2**31 else np.int64, n_edges) as f_top:
+        for lo in range(0, n_edges, PLAN_BLOCK):
+            ptr = np.asarray(inc_ptr[lo:min(n_edges, lo + PLAN_BLOCK) + 1])
+            top = row_tops(ptr - ptr[0], inc_cand[ptr[0]:ptr[-1]], rank)
+            if len(top) and top.min() < 0:
+                raise ValueError(f"{d / 'inc_ptr.npy'}: an edge lies in no candidate")
+            add_row_lengths(top, ptr, per_top)
+            f_top.write(top)
+            if budget and resident_bytes() > budget:
+                drop_mapped_pages((inc_ptr, inc_cand, rank))
     if n_edges == 0:
         return []
-    cum = np.cumsum(np.diff(np.asarray(inc_ptr))[order])
+    cum = np.cumsum(per_top, out=per_top)  # incidences up to and including each top
     total = int(cum[-1])
     n_parts = max(1, -(-total // max(1, per_part)))
-    st = top[order]
-    starts = np.flatnonzero(np.concatenate([[True], st[1:] != st[:-1]]))  # first edge of each top
-    want = np.searchsorted(cum, np.linspace(0, total, n_parts + 1)[1:-1], side="left") + 1
-    at = np.searchsorted(starts, want, side="left")  # the first top boundary at or after each wish
-    cuts = np.append(starts, n_edges)[at]
-    bounds = np.unique(np.concatenate([[0], cuts, [n_edges]]))
-    return [{"index": i, "lo": int(a), "hi": int(b)} for i, (a, b) in enumerate(zip(bounds[:-1], bounds[1:]))]
+    # the edge where the running count first reaches a multiple lies in the first top
+    # whose cumulative count reaches it; the cut is the end of that top
+    last = np.searchsorted(cum, np.linspace(0, total, n_parts + 1)[1:-1], side="left")
+    bounds = np.unique(np.concatenate([[0], last + 1, [n_cand]]))
+    inc_at = np.concatenate([[0], cum])[bounds]
+    return [{"index": i, "top_lo": int(a), "top_hi": int(b)}
+            for i, (a, b) in enumerate((a, b) for a, b, c0, c1 in zip(bounds[:-1], bounds[1:], inc_at[:-1],
+                                                                        inc_at[1:]) if c1 > c0)]
 
 
 def _files(out: Path, index: int, stem: str = "p") -> list[Path]:
@@ -82,22 +96,46 @@ def incidence_maps(enum_dir: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
             load_npy(d / "weight.npy", mmap=True))
 
 
-def tree_part(part: dict, enum_dir: str, out_dir: str, rank, by_rank, maps=None) -> dict:
+def part_edges(out_dir: str, part: dict) -> np.ndarray:
+    """The edges whose top lies in the part's range, ascending (read from ``top.npy``)."""
+    found = [lo + np.flatnonzero((t >= part["top_lo"]) & (t < part["top_hi"]))
+             for lo, t in npy_blocks(Path(out_dir) / "top.npy", PLAN_BLOCK)]
+    return np.concatenate(found) if found else np.empty(0, np.int64)
+
+
+def tree_part(part: dict, enum_dir: str, out_dir: str, maps=None, budget: int | None = None) -> dict:
     """Build one part's prefix tree (global candidate ids) and write it.
 
-    Writes ``{out_dir}/g{index:05d}.cand/.depth/.end/.ey.npy``. ``maps`` (from
-    :func:`incidence_maps`) lets threads of one process share one mapping of the
-    incidence: a part's edges are spread over the whole file, and each mapping
+    Writes ``{out_dir}/g{index:05d}.cand/.depth/.end/.ey.npy``. The part's rows of
+    the incidence are first copied into one compact block, a block of edges at a
+    time (with ``budget``, the mapped pages are dropped between blocks: a part's
+    edges are spread over the whole file). ``maps`` (from :func:`incidence_maps`)
+    lets threads of one process share one mapping of the incidence: each mapping
     that touches it counts in full in the process's resident memory.
     """
     out = Path(out_dir)
-    edges = np.sort(load_npy(out / "order.npy", mmap=True)[part["lo"]:part["hi"]])
+    edges = part_edges(out_dir, part)
     inc_ptr, inc_cand, y = maps if maps is not None else incidence_maps(enum_dir)
-    cand, depth, end, ey = build_tree(inc_ptr, inc_cand, y, edges, np.asarray(rank), np.asarray(by_rank))
-    for f, arr in zip(_files(out, part["index"], "g"), (cand, depth, end, ey)):
+    ptr = np.zeros(len(edges) + 1, np.int64)
+    cand = np.empty(0, inc_cand.dtype)
+    if len(edges):
+        np.cumsum(np.asarray(inc_ptr)[edges + 1] - np.asarray(inc_ptr)[edges], out=ptr[1:])
+        cand = np.empty(int(ptr[-1]), inc_cand.dtype)
+        for lo in range(0, len(edges), PLAN_BLOCK):
+            hi = min(len(edges), lo + PLAN_BLOCK)
+            gather_rows(inc_ptr, inc_cand, edges[lo:hi], ptr[lo], cand)
+            if budget and resident_bytes() > budget:
+                drop_mapped_pages((inc_ptr, inc_cand))
+    ey_in = np.asarray(y)[edges]
+    if budget:
+        drop_mapped_pages((inc_ptr, y))
+    rank = load_npy(out / "rank.npy", mmap=True)
+    by_rank = load_npy(out / "by_rank.npy", mmap=True)
+    tree = build_tree(ptr, cand, ey_in, np.arange(len(edges), dtype=np.int64), rank, by_rank)
+    for f, arr in zip(_files(out, part["index"], "g"), tree):
         save_npy(f, arr)
-    n_inc = int(np.sum(np.asarray(inc_ptr)[edges + 1] - np.asarray(inc_ptr)[edges]))
-    return {**part, "edges": int(len(edges)), "incidences": n_inc, "nodes": int(len(cand)), "ends": int(len(end))}
+    return {**part, "edges": int(len(edges)), "incidences": int(ptr[-1]), "nodes": int(len(tree[0])),
+            "ends": int(len(tree[2]))}
 
 
 def number_candidates(part_list: list[dict], out_dir: str, n_cand: int) -> tuple[np.ndarray, list[int]]:
@@ -161,35 +199,45 @@ def localize_part(part: dict, out_dir: str, new_id, own_lo: int, own_end: int) -
             "stragglers": int(len(strag))}
 
 
-def prepare_trees(engine, enum_dir: str, tree_dir: str, sizes: np.ndarray, per_part: int):
+def prepare_trees(engine, enum_dir: str, tree_dir: str, sizes: np.ndarray, per_part: int,
+                  budget: int | None = None):
     """All of the fit's preparation: parts, their trees, the first-use numbering.
 
-    Returns ``(part_list, new_id)``; the part files are in ``tree_dir`` (``order.npy``
-    is removed once the trees are built).
+    Returns ``(part_list, new_id)`` and writes ``new_id.npy``; the part files are in
+    ``tree_dir``. The candidates' list order (``rank.npy``, ``by_rank.npy``) and the
+    edges' tops (``top.npy``) go through files there, not through the driver, and
+    are removed once the trees are built. ``budget`` (bytes a task may hold) makes
+    the steps drop the pages of the incidence they have mapped as they go.
     """
+    tree_dir = Path(tree_dir)
+    tree_dir.mkdir(parents=True, exist_ok=True)
     sizes = np.asarray(sizes, np.int64)
     rank = candidate_rank(sizes * (sizes - 1) // 2)
+    n_cand = len(rank)
     del sizes
+    save_npy(tree_dir / "rank.npy", rank)
     by_rank = np.empty_like(rank)  # the inverse permutation
-    by_rank[rank] = np.arange(len(rank))
-    rank_ref, by_rank_ref = engine.scatter(rank), engine.scatter(by_rank)
-    planned = engine.submit(plan_tree_parts, str(enum_dir), str(tree_dir), rank_ref, per_part).result()
+    by_rank[rank] = np.arange(n_cand)
+    del rank
+    save_npy(tree_dir / "by_rank.npy", by_rank)
+    del by_rank
+    planned = engine.submit(plan_tree_parts, str(enum_dir), str(tree_dir), per_part, budget).result()
     # threads of this process share one mapping; workers elsewhere open their own
     maps = incidence_maps(enum_dir) if engine.client is None else None
-    built = engine.map(tree_part, planned, str(enum_dir), str(tree_dir), rank_ref, by_rank_ref, maps,
-                       desc="fit: prefix trees")
+    built = engine.map(tree_part, planned, str(enum_dir), str(tree_dir), maps, budget, desc="fit: prefix trees")
     del maps
-    new_id, first = number_candidates(built, str(tree_dir), len(rank))
-    new_ref = engine.scatter(new_id)
+    new_id, first = number_candidates(built, str(tree_dir), n_cand)
+    save_npy(tree_dir / "new_id.npy", new_id)
     part_list = engine.map(_localize_item, [(b, first[i], first[i + 1]) for i, b in enumerate(built)],
-                           str(tree_dir), new_ref, desc="fit: numbering")
-    (Path(tree_dir) / "order.npy").unlink(missing_ok=True)
+                           str(tree_dir), desc="fit: numbering")
+    for name in ("top", "rank", "by_rank"):
+        (tree_dir / f"{name}.npy").unlink(missing_ok=True)
     return part_list, new_id
 
 
-def _localize_item(item, out_dir, new_id):
+def _localize_item(item, out_dir):
     part, own_lo, own_end = item
-    return localize_part(part, out_dir, new_id, own_lo, own_end)
+    return localize_part(part, out_dir, load_npy(Path(out_dir) / "new_id.npy", mmap=True), own_lo, own_end)
 
 
 _TREE_CACHE: dict = {}

@@ -140,8 +140,9 @@ def run(ctx: StageContext) -> dict:
         if RunStore.unit_done(work, "trees"):
             part_list = RunStore.unit_info(work, "trees")["parts"]
         else:
-            part_list, new_id = parts.prepare_trees(ctx.engine, str(enum_dir), str(tree_dir), sizes, per_part)
-            save_npy(tree_dir / "new_id.npy", new_id)
+            part_list, new_id = parts.prepare_trees(ctx.engine, str(enum_dir), str(tree_dir), sizes, per_part,
+                                                    ctx.engine.task_memory())
+            del new_id  # written to trees/new_id.npy
             RunStore.unit_commit(work, "trees", ["trees/new_id.npy"] + [f"trees/{f}" for r in part_list
                                                                        for f in r["files"]], {"parts": part_list})
         new_id = load_npy(tree_dir / "new_id.npy")
