@@ -246,7 +246,10 @@ def drop_mapped_pages(arrays: Iterable) -> None:
     import mmap
 
     for a in arrays:
-        m = getattr(a, "_mmap", None)  # numpy.memmap keeps its mmap.mmap here
+        m = None
+        while a is not None and m is None:  # a view of a memmap: follow its bases
+            m = getattr(a, "_mmap", None)  # numpy.memmap keeps its mmap.mmap here
+            a = getattr(a, "base", None)
         if m is not None and hasattr(m, "madvise"):
             try:
                 m.madvise(mmap.MADV_DONTNEED)

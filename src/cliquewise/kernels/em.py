@@ -248,16 +248,22 @@ def em_update_penalty(mu, acc, P):
         The next ``mu`` and ``sum_k mu_k P_k`` (summed in the same order as
         :func:`penalty`, so the two agree bit for bit).
     """
+    out = np.empty(mu.shape[0], dtype=np.float64)
+    return out, em_update_penalty_into(mu, acc, P, out)
+
+
+@numba.njit(nogil=True, cache=True)
+def em_update_penalty_into(mu, acc, P, out):
+    """:func:`em_update_penalty` writing the next ``mu`` into ``out``; returns the penalty."""
     n = mu.shape[0]
-    if acc.shape[0] != n or P.shape[0] != n:
-        raise ValueError("mu, acc and P differ in length")
-    out = np.empty(n, dtype=np.float64)
+    if acc.shape[0] != n or P.shape[0] != n or out.shape[0] != n:
+        raise ValueError("mu, acc, P and out differ in length")
     total = 0.0
     for k in range(n):
         m = mu[k]
         total += m * P[k]
         out[k] = 0.0 if m == 0.0 else m * acc[k] / P[k]
-    return out, total
+    return total
 
 
 @numba.njit(nogil=True, cache=True)
@@ -316,6 +322,13 @@ def squarem_point(x, x1, x2, alpha, min_ratio):
     """The extrapolated point ``x - 2 alpha r + alpha^2 v``, projected: a coordinate
     that is not positive (or NaN) becomes ``min_ratio * x`` (see :func:`fit_em`)."""
     out = np.empty(x.shape[0], np.float64)
+    squarem_point_into(x, x1, x2, alpha, min_ratio, out)
+    return out
+
+
+@numba.njit(nogil=True, cache=True)
+def squarem_point_into(x, x1, x2, alpha, min_ratio, out):
+    """:func:`squarem_point` written into ``out``."""
     a2 = 2.0 * alpha
     aa = alpha * alpha
     for k in range(x.shape[0]):
@@ -323,7 +336,6 @@ def squarem_point(x, x1, x2, alpha, min_ratio):
         v = x2[k] - 2.0 * x1[k] + x[k]
         p = x[k] - a2 * r + aa * v
         out[k] = p if p > 0.0 else min_ratio * x[k]
-    return out
 
 
 # --------------------------------------------------------------------------
@@ -370,6 +382,18 @@ def _small_change(old: float, new: float, tol: float) -> bool:
     return abs(new - old) <= tol * abs(new)
 
 
+class _ArrayOps:
+    """:func:`fit_em`'s vector operations on numpy arrays."""
+
+    @staticmethod
+    def check(x) -> None:
+        if np.any(x < 0) or not np.all(np.isfinite(x)):
+            raise ValueError("mu0 must be finite and >= 0")
+
+    norms = staticmethod(squarem_norms)
+    point = staticmethod(squarem_point)
+
+
 def fit_em(
     step: Callable[[np.ndarray], tuple[np.ndarray, float]],
     loglik_fn: Callable[[np.ndarray], float],
@@ -381,6 +405,7 @@ def fit_em(
     min_ratio: float = 1e-8,
     trace0=None,
     start_iter: int = 0,
+    ops=None,
 ) -> EMResult:
     """Run EM, optionally accelerated by SQUAREM, around a step callable.
 
@@ -432,14 +457,20 @@ def fit_em(
         uninterrupted one exactly (apart from ``n_evals``).
     start_iter : int
         Resume: iterations already done; ``max_iter`` counts them too.
+    ops : object, optional
+        The vector operations SQUAREM needs, for vectors that are not plain
+        arrays in memory: ``check(x)`` (raise unless finite and ``>= 0``),
+        ``norms(x, x1, x2)`` (:func:`squarem_norms`) and
+        ``point(x, x1, x2, alpha, min_ratio)`` (:func:`squarem_point`). Default:
+        those kernels on numpy arrays.
 
     Returns
     -------
     EMResult
     """
-    x = np.asarray(mu0, dtype=np.float64)  # never written in place: no copy needed
-    if np.any(x < 0) or not np.all(np.isfinite(x)):
-        raise ValueError("mu0 must be finite and >= 0")
+    ops = _ArrayOps if ops is None else ops
+    x = mu0 if ops is not _ArrayOps else np.asarray(mu0, dtype=np.float64)  # never written in place
+    ops.check(x)
     trace: list[float] = [float(t) for t in trace0] if trace0 is not None else []
     n_evals = 0
     converged = False
@@ -464,12 +495,12 @@ def fit_em(
             continue
         x2, _ = (step.without_loglik(x1) if hasattr(step, "without_loglik") else step(x1))
         n_evals += 1
-        sr, sv = squarem_norms(x, x1, x2)
+        sr, sv = ops.norms(x, x1, x2)
         alpha = -math.sqrt(sr / sv) if sv > 0.0 else -1.0
         if not alpha < -1.0:  # clamp to <= -1; also catches nan
             x = x2  # alpha = -1: the extrapolated point is x2 itself
             continue
-        xp = squarem_point(x, x1, x2, alpha, min_ratio)  # projected; nan counts as not positive
+        xp = ops.point(x, x1, x2, alpha, min_ratio)  # projected; nan counts as not positive
         x = x1 = None  # not needed any more: one vector less held while F(x') runs
         x3, lp = step(xp)
         n_evals += 1

@@ -53,6 +53,7 @@ from cliquewise import _numba_setup  # noqa: F401  (sets NUMBA_CACHE_DIR first)
 
 __all__ = [
     "build_tree",
+    "build_tree_keyed",
     "build_tree_reference",
     "candidate_rank",
     "row_tops",
@@ -293,13 +294,27 @@ def build_tree(inc_ptr, inc_cand, y, edges, rank, by_rank):
         ptr[i + 1] = ptr[i] + inc_ptr[e + 1] - inc_ptr[e]
     m = ptr[n]
     keyed = np.empty(m, np.int64)
+    ys = np.empty(n, np.float64)
     for i in range(n):
         e = edges[i]
+        ys[i] = y[e]
+        src = inc_ptr[e] - ptr[i]
+        for j in range(ptr[i], ptr[i + 1]):
+            keyed[j] = rank[inc_cand[src + j]]
+    return build_tree_keyed(ptr, keyed, ys, by_rank)
+
+
+@numba.njit(nogil=True, cache=True)
+def build_tree_keyed(ptr, keyed, y, by_rank):
+    """:func:`build_tree` from rows already turned into ranks: row ``i`` is
+    ``keyed[ptr[i]:ptr[i + 1]]`` (any order; sorted here, in place) with weight
+    ``y[i]``. The fit's plan writes each part's rows this way, so building a tree
+    reads the part's own rows and nothing else of the incidence."""
+    n = ptr.shape[0] - 1
+    m = ptr[n]
+    for i in range(n):
         s = ptr[i]
         t = ptr[i + 1]
-        src = inc_ptr[e] - s
-        for j in range(s, t):
-            keyed[j] = rank[inc_cand[src + j]]
         # insertion sort: rows are short
         for j in range(s + 1, t):
             x = keyed[j]
@@ -318,7 +333,7 @@ def build_tree(inc_ptr, inc_cand, y, edges, rank, by_rank):
     prev = -1
     for idx in range(n):
         i = order[idx]
-        w = y[edges[i]]
+        w = y[i]
         if w == 0.0:
             continue
         s = ptr[i]

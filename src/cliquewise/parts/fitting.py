@@ -5,8 +5,10 @@ Once, before the EM, the edges' candidate lists are put into a prefix tree
 lists that start alike share their nodes, so an EM sweep does about half the work
 of the flat incidence. The tree of all edges splits into independent subtrees,
 one per *top* (an edge's first candidate in list order), so a *part* is a set of
-whole subtrees: :func:`plan_tree_parts` orders the edges by top and cuts that
-order at top boundaries into parts of about equal incidence counts. The parts'
+whole subtrees: :func:`plan_tree_parts` gives each edge its top and cuts the tops
+into ranges of about equal incidence counts, then writes each part's rows (as
+ranks) into the part's own scratch files, streaming the incidence once; each
+part's tree is built from those files alone (:func:`tree_part`). The parts'
 trees, in part order, are exactly the tree of all edges.
 
 The candidates are then numbered in the order the trees use them (first use,
@@ -22,8 +24,9 @@ from pathlib import Path
 
 import numpy as np
 
-from cliquewise.kernels.prefixtree import (add_row_lengths, build_tree, candidate_rank, check_tree, first_seen_order,
-                                            gather_rows, row_tops, tree_sweep, tree_unsupported)
+from cliquewise.kernels.prefixtree import (add_row_lengths, build_tree_keyed, candidate_rank, check_tree,
+                                            first_seen_order, gather_rows, row_tops, tree_sweep, tree_unsupported)
+from cliquewise.parts.vectors import open_vector, release
 from cliquewise.store import NpyStream, drop_mapped_pages, load_npy, npy_blocks, resident_bytes, save_npy
 
 TREE_ARRAYS = ("cand", "depth", "end", "ey")  # plus p*.strag.npy once localized
@@ -39,7 +42,7 @@ def part_size(total_incidences: int, incidences_per_part: int) -> int:
     return min(int(incidences_per_part), max(250_000, -(-int(total_incidences) // MIN_PARTS)))
 
 
-PLAN_BLOCK = 1 << 22  # edges per block when the plan and the trees read the incidence
+PLAN_BLOCK = 1 << 20  # edges per block when the plan reads the incidence
 
 
 def plan_tree_parts(enum_dir: str, out_dir: str, per_part: int, budget: int | None = None) -> list[dict]:
@@ -52,12 +55,14 @@ def plan_tree_parts(enum_dir: str, out_dir: str, per_part: int, budget: int | No
     incidences, so the parts depend on the data only. The incidence is read a
     block of edges at a time; with ``budget`` (bytes) its mapped pages are dropped
     between blocks. Memory: the tops' incidence counts (8 bytes per candidate).
+    A second pass writes each part's rows into the part's own files
+    (:func:`_write_part_rows`).
     """
     d = Path(enum_dir)
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     rank = load_npy(out / "rank.npy", mmap=True)
-    inc_ptr, inc_cand, _ = incidence_maps(enum_dir)
+    inc_ptr, inc_cand, y = incidence_maps(enum_dir)
     n_edges, n_cand = len(inc_ptr) - 1, len(rank)
     per_top = np.zeros(n_cand, np.int64)  # incidences of the edges with each top
     with NpyStream(out / "top.npy", np.int32 if n_cand < 2**31 else np.int64, n_edges) as f_top:
@@ -80,9 +85,52 @@ def plan_tree_parts(enum_dir: str, out_dir: str, per_part: int, budget: int | No
     last = np.searchsorted(cum, np.linspace(0, total, n_parts + 1)[1:-1], side="left")
     bounds = np.unique(np.concatenate([[0], last + 1, [n_cand]]))
     inc_at = np.concatenate([[0], cum])[bounds]
-    return [{"index": i, "top_lo": int(a), "top_hi": int(b)}
-            for i, (a, b) in enumerate((a, b) for a, b, c0, c1 in zip(bounds[:-1], bounds[1:], inc_at[:-1],
-                                                                        inc_at[1:]) if c1 > c0)]
+    del per_top, cum
+    planned = [{"index": i, "top_lo": int(a), "top_hi": int(b)}
+               for i, (a, b) in enumerate((a, b) for a, b, c0, c1 in zip(bounds[:-1], bounds[1:], inc_at[:-1],
+                                                                           inc_at[1:]) if c1 > c0)]
+    _write_part_rows(out, planned, (inc_ptr, inc_cand, y), rank, budget)
+    return planned
+
+
+def _bucket(out: Path, index: int, name: str) -> Path:
+    return out / f"b{index:05d}.{name}.bin"
+
+
+def _write_part_rows(out: Path, planned: list[dict], maps, rank, budget: int | None) -> None:
+    """Second pass of the plan: every part's rows, turned into ranks, with their
+    weights, appended to the part's own scratch files (``b{index}.len/.rows/.y.bin``)
+    in edge order, a block of edges at a time. A part's tree is then built from its
+    files alone."""
+    inc_ptr, inc_cand, y = maps
+    tops_lo = np.array([p["top_lo"] for p in planned], np.int64)
+    key_dtype = np.int32 if len(rank) < 2**31 else np.int64
+    for p in planned:
+        for name in ("len", "rows", "y"):
+            _bucket(out, p["index"], name).unlink(missing_ok=True)
+    for lo, top in npy_blocks(out / "top.npy", PLAN_BLOCK):
+        hi = lo + len(top)
+        ptr = np.asarray(inc_ptr[lo:hi + 1])
+        base = int(ptr[0])
+        local = ptr - base
+        pid = np.searchsorted(tops_lo, top, side="right") - 1
+        order = np.argsort(pid, kind="stable")  # edge order within each part
+        rows = np.empty(int(local[-1]), inc_cand.dtype)
+        gather_rows(local, inc_cand[base:int(ptr[-1])], order, np.int64(0), rows)
+        keyed = np.asarray(rank)[rows].astype(key_dtype)
+        del rows
+        lens = np.diff(local)[order].astype(np.int32)
+        ys = np.asarray(y[lo:hi])[order]
+        counts = np.bincount(pid, minlength=len(planned))
+        e_off = np.concatenate([[0], np.cumsum(counts)])
+        r_off = np.concatenate([[0], np.cumsum(lens, dtype=np.int64)])[e_off]
+        for i in np.flatnonzero(counts):
+            a, b = int(e_off[i]), int(e_off[i + 1])
+            for name, arr in (("len", lens[a:b]), ("rows", keyed[int(r_off[i]):int(r_off[i + 1])]), ("y", ys[a:b])):
+                with open(_bucket(out, planned[i]["index"], name), "ab") as fh:
+                    fh.write(memoryview(np.ascontiguousarray(arr)).cast("B"))
+        if budget and resident_bytes() > budget:
+            drop_mapped_pages((inc_ptr, inc_cand, y, rank))
 
 
 def _files(out: Path, index: int, stem: str = "p") -> list[Path]:
@@ -96,45 +144,32 @@ def incidence_maps(enum_dir: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
             load_npy(d / "weight.npy", mmap=True))
 
 
-def part_edges(out_dir: str, part: dict) -> np.ndarray:
-    """The edges whose top lies in the part's range, ascending (read from ``top.npy``)."""
-    found = [lo + np.flatnonzero((t >= part["top_lo"]) & (t < part["top_hi"]))
-             for lo, t in npy_blocks(Path(out_dir) / "top.npy", PLAN_BLOCK)]
-    return np.concatenate(found) if found else np.empty(0, np.int64)
+def tree_part(part: dict, out_dir: str, budget: int | None = None) -> dict:
+    """Build one part's prefix tree (global candidate ids) from its rows and write it.
 
-
-def tree_part(part: dict, enum_dir: str, out_dir: str, maps=None, budget: int | None = None) -> dict:
-    """Build one part's prefix tree (global candidate ids) and write it.
-
-    Writes ``{out_dir}/g{index:05d}.cand/.depth/.end/.ey.npy``. The part's rows of
-    the incidence are first copied into one compact block, a block of edges at a
-    time (with ``budget``, the mapped pages are dropped between blocks: a part's
-    edges are spread over the whole file). ``maps`` (from :func:`incidence_maps`)
-    lets threads of one process share one mapping of the incidence: each mapping
-    that touches it counts in full in the process's resident memory.
+    Reads the part's scratch files from the plan (then removes them) and writes
+    ``{out_dir}/g{index:05d}.cand/.depth/.end/.ey.npy``. With ``budget`` the mapped
+    pages of the rank table are dropped afterwards.
     """
     out = Path(out_dir)
-    edges = part_edges(out_dir, part)
-    inc_ptr, inc_cand, y = maps if maps is not None else incidence_maps(enum_dir)
-    ptr = np.zeros(len(edges) + 1, np.int64)
-    cand = np.empty(0, inc_cand.dtype)
-    if len(edges):
-        np.cumsum(np.asarray(inc_ptr)[edges + 1] - np.asarray(inc_ptr)[edges], out=ptr[1:])
-        cand = np.empty(int(ptr[-1]), inc_cand.dtype)
-        for lo in range(0, len(edges), PLAN_BLOCK):
-            hi = min(len(edges), lo + PLAN_BLOCK)
-            gather_rows(inc_ptr, inc_cand, edges[lo:hi], ptr[lo], cand)
-            if budget and resident_bytes() > budget:
-                drop_mapped_pages((inc_ptr, inc_cand))
-    ey_in = np.asarray(y)[edges]
-    if budget:
-        drop_mapped_pages((inc_ptr, y))
-    rank = load_npy(out / "rank.npy", mmap=True)
     by_rank = load_npy(out / "by_rank.npy", mmap=True)
-    tree = build_tree(ptr, cand, ey_in, np.arange(len(edges), dtype=np.int64), rank, by_rank)
+    files = {name: _bucket(out, part["index"], name) for name in ("len", "rows", "y")}
+    lens = np.fromfile(files["len"], np.int32) if files["len"].exists() else np.empty(0, np.int32)
+    ptr = np.zeros(len(lens) + 1, np.int64)
+    np.cumsum(lens, out=ptr[1:])
+    key_dtype = np.int32 if len(by_rank) < 2**31 else np.int64
+    keyed = (np.fromfile(files["rows"], key_dtype) if files["rows"].exists() else np.empty(0, key_dtype))
+    ys = np.fromfile(files["y"], np.float64) if files["y"].exists() else np.empty(0, np.float64)
+    if len(keyed) != ptr[-1] or len(ys) != len(lens):
+        raise ValueError(f"{files['rows']}: the part's scratch files do not match")
+    tree = build_tree_keyed(ptr, keyed.astype(np.int64), ys, by_rank)
+    if budget:
+        drop_mapped_pages((by_rank,))
     for f, arr in zip(_files(out, part["index"], "g"), tree):
         save_npy(f, arr)
-    return {**part, "edges": int(len(edges)), "incidences": int(ptr[-1]), "nodes": int(len(tree[0])),
+    for f in files.values():
+        f.unlink(missing_ok=True)
+    return {**part, "edges": int(len(lens)), "incidences": int(ptr[-1]), "nodes": int(len(tree[0])),
             "ends": int(len(tree[2]))}
 
 
@@ -215,17 +250,16 @@ def prepare_trees(engine, enum_dir: str, tree_dir: str, sizes: np.ndarray, per_p
     rank = candidate_rank(sizes * (sizes - 1) // 2)
     n_cand = len(rank)
     del sizes
-    save_npy(tree_dir / "rank.npy", rank)
-    by_rank = np.empty_like(rank)  # the inverse permutation
-    by_rank[rank] = np.arange(n_cand)
+    small = np.int32 if n_cand < 2**31 else np.int64  # half the pages the tasks map when they look ranks up
+    save_npy(tree_dir / "rank.npy", rank.astype(small))
+    by_rank = np.empty(n_cand, small)  # the inverse permutation
+    by_rank[rank] = np.arange(n_cand, dtype=small)
     del rank
     save_npy(tree_dir / "by_rank.npy", by_rank)
     del by_rank
-    planned = engine.submit(plan_tree_parts, str(enum_dir), str(tree_dir), per_part, budget).result()
-    # threads of this process share one mapping; workers elsewhere open their own
-    maps = incidence_maps(enum_dir) if engine.client is None else None
-    built = engine.map(tree_part, planned, str(enum_dir), str(tree_dir), maps, budget, desc="fit: prefix trees")
-    del maps
+    trim = budget * 2 // 5 if budget else None  # resident bytes at which mapped pages are dropped
+    planned = engine.submit(plan_tree_parts, str(enum_dir), str(tree_dir), per_part, trim).result()
+    built = engine.map(tree_part, planned, str(tree_dir), trim, desc="fit: prefix trees")
     new_id, first = number_candidates(built, str(tree_dir), n_cand)
     save_npy(tree_dir / "new_id.npy", new_id)
     part_list = engine.map(_localize_item, [(b, first[i], first[i + 1]) for i, b in enumerate(built)],
@@ -244,12 +278,14 @@ _TREE_CACHE: dict = {}
 _TREE_CACHE_LIMIT = 64
 
 
-def _load_tree(tree_dir: str, part: dict):
+def _load_tree(tree_dir: str, part: dict, cache_bytes: int | None = None):
     """A part's tree arrays and stragglers, checked once and kept in this process
     between EM steps.
 
     Keyed by path and modification time, so a rewritten part is read again. The
     arrays are what the fit sweeps every step anyway (memory linear in incidences).
+    With ``cache_bytes`` (a memory limit), parts that would take the cache past it
+    are read again at every step instead of kept.
     """
     files = _files(Path(tree_dir), part["index"]) + [Path(tree_dir) / f"p{part['index']:05d}.strag.npy"]
     key = (str(tree_dir), part["index"], tuple(f.stat().st_mtime_ns for f in files))
@@ -258,6 +294,10 @@ def _load_tree(tree_dir: str, part: dict):
         if len(_TREE_CACHE) >= _TREE_CACHE_LIMIT:
             _TREE_CACHE.clear()
         arrays = tuple(load_npy(f) for f in files)
+        if cache_bytes is not None and sum(a.nbytes for v in _TREE_CACHE.values() for a in v) + sum(
+                a.nbytes for a in arrays) > cache_bytes:
+            check_tree(*arrays[:4], part["width"])
+            return arrays
         check_tree(*arrays[:4], part["width"])
         strag = arrays[4]
         if len(strag) != part["width"] - (part["cand_hi"] - part["cand_lo"] + 1) or (
@@ -281,25 +321,35 @@ def clear_cache() -> None:
     _TREE_CACHE.clear()
 
 
-def em_part(part: dict, tree_dir: str, mu: np.ndarray, want_loglik: bool = True, out: np.ndarray | None = None) -> dict:
+def em_part(part: dict, tree_dir: str, mu, want_loglik: bool = True, out=None,
+            cache_bytes: int | None = None) -> dict:
     """The map of one EM step on one part: accumulators (own block and stragglers)
     and ``sum Y log lambda``.
 
-    With ``out`` (a stage-wide accumulator shared by threads of this process) the
-    own block is written straight into ``out[cand_lo:cand_hi + 1]``, which no other
-    part writes, and the result carries ``acc=None``; stragglers always come back.
+    ``mu`` is the array or the path of its file (:func:`vectors.open_vector`). With
+    ``out`` (a stage-wide accumulator: an array shared by threads of this process,
+    or the path of a file) the own block is written straight into
+    ``out[cand_lo:cand_hi + 1]``, which no other part writes, and the result carries
+    ``acc=None``; stragglers always come back.
     """
     if part["width"] == 0:
         return {"cand_lo": 0, "acc": np.zeros(0), "strag": np.zeros(0, np.int64), "strag_acc": np.zeros(0),
                 "loglik": 0.0}
-    cand, depth, end, ey, strag = _load_tree(tree_dir, part)
+    cand, depth, end, ey, strag = _load_tree(tree_dir, part, cache_bytes)
     acc = np.zeros(part["width"], np.float64)
-    ll = tree_sweep(cand, depth, end, ey, _local(part, strag, mu), acc, want_loglik)
+    mu = open_vector(mu)
+    local = _local(part, strag, mu)
+    release(mu)
+    ll = tree_sweep(cand, depth, end, ey, local, acc, want_loglik)
     lo = part["cand_lo"]
     w = part["cand_hi"] - lo + 1
     own = acc[:w]
     if out is not None:
-        out[lo:lo + w] = own
+        target = open_vector(out, writable=True)
+        target[lo:lo + w] = own
+        if target is not out:  # a file: on disk before the driver reads it
+            target.flush()
+            release(target)
         own = None
     return {"cand_lo": lo, "acc": own, "strag": strag, "strag_acc": acc[w:], "loglik": float(ll)}
 
@@ -322,12 +372,15 @@ def add_partial(acc: np.ndarray, res: dict) -> None:
     acc[res["strag"]] += res["strag_acc"]  # stragglers are distinct within a part
 
 
-def support_part(part: dict, tree_dir: str, mu_kept: np.ndarray, mu_full: np.ndarray) -> np.ndarray:
+def support_part(part: dict, tree_dir: str, mu_kept, mu_full, cache_bytes: int | None = None) -> np.ndarray:
     """Candidates (stage numbering) to keep so that each of this part's ends keeps a positive rate."""
     if part["width"] == 0:
         return np.empty(0, np.int64)
-    cand, depth, end, _, strag = _load_tree(tree_dir, part)
-    rel = tree_unsupported(cand, depth, end, _local(part, strag, mu_kept), _local(part, strag, mu_full))
+    cand, depth, end, _, strag = _load_tree(tree_dir, part, cache_bytes)
+    mu_kept, mu_full = open_vector(mu_kept), open_vector(mu_full)
+    kept, full = _local(part, strag, mu_kept), _local(part, strag, mu_full)
+    release(mu_kept, mu_full)
+    rel = tree_unsupported(cand, depth, end, kept, full)
     rel = rel.astype(np.int64)
     w = part["cand_hi"] - part["cand_lo"] + 1
     out = rel + part["cand_lo"]
@@ -336,7 +389,10 @@ def support_part(part: dict, tree_dir: str, mu_kept: np.ndarray, mu_full: np.nda
     return out
 
 
-def restore_support(engine, part_list, tree_dir: str, mu_kept, mu_full) -> np.ndarray:
-    """Candidate ids to un-prune so every edge keeps a positive rate."""
-    res = engine.map(support_part, part_list, tree_dir, engine.scatter(mu_kept), engine.scatter(mu_full))
+def restore_support(engine, part_list, tree_dir: str, mu_kept, mu_full, cache_bytes: int | None = None) -> np.ndarray:
+    """Candidate ids to un-prune so every edge keeps a positive rate (the vectors
+    as arrays, or paths of their files)."""
+    if not isinstance(mu_kept, str):
+        mu_kept, mu_full = engine.scatter(mu_kept), engine.scatter(mu_full)
+    res = engine.map(support_part, part_list, tree_dir, mu_kept, mu_full, cache_bytes)
     return np.unique(np.concatenate(res)) if res else np.empty(0, np.int64)

@@ -27,10 +27,11 @@ import shutil
 
 import numpy as np
 
-from cliquewise.kernels.em import em_update, em_update_penalty, fit_em, loglik_constant, penalty
+from cliquewise.kernels.em import fit_em, loglik_constant
 from cliquewise.parts import fitting as parts
+from cliquewise.parts.vectors import CHUNK, Vectors, release
 from cliquewise.stage import StageContext
-from cliquewise.store import RunStore, load_npy, read_json, save_npy, write_json_atomic
+from cliquewise.store import RunStore, load_npy, npy_blocks, read_json, write_json_atomic
 
 NAME = "fit"
 UPSTREAM = ["enumerate"]
@@ -43,14 +44,20 @@ def params_from(settings) -> dict:
 
 
 class DistributedStep:
-    """``step(mu) -> (EM image of mu, log-likelihood at mu)`` over the cluster."""
+    """``step(mu) -> (EM image of mu, log-likelihood at mu)`` over the cluster.
 
-    def __init__(self, ctx: StageContext, tree_dir, part_list, P):
+    The vectors come from ``vs`` (:class:`~cliquewise.parts.vectors.Vectors`): arrays,
+    or files that the tasks open by path (under a memory limit).
+    """
+
+    def __init__(self, ctx: StageContext, tree_dir, part_list, P, vs, cache_bytes=None):
         self.ctx = ctx
         self.tree_dir = str(tree_dir)
         self.parts = part_list
         self.order = parts.heaviest_first(part_list)
         self.P = P
+        self.vs = vs
+        self.cache_bytes = cache_bytes
         self.evals = 0
         self._acc = None
 
@@ -58,21 +65,22 @@ class DistributedStep:
         """Accumulators over all parts and ``sum Y log lambda``.
 
         On the embedded engine the parts write their own blocks into one buffer
-        (reused: the result is valid until the next call); on a cluster they
-        return them. Either way the stragglers are added in part order, so the
-        sums do not depend on the engine.
+        (reused: the result is valid until the next call); with file vectors they
+        write them into one file; otherwise they return them. Either way the
+        stragglers are added in part order, so the sums do not depend on the engine.
         """
         eng = self.ctx.engine
+        vs = self.vs
         order = self.order
-        shared = eng.client is None
-        if shared:
-            if self._acc is None or len(self._acc) != len(mu):
-                self._acc = np.zeros(len(mu), np.float64)  # entries of no part stay 0
+        items = [self.parts[i] for i in order]
+        if eng.client is None or vs.in_files:
+            if self._acc is None:
+                self._acc = vs.full(0.0)  # entries of no part stay 0
             acc = self._acc
-            done = eng.map(parts.em_part, [self.parts[i] for i in order], self.tree_dir, mu, want_loglik, acc)
+            done = eng.map(parts.em_part, items, self.tree_dir, vs.ref(mu), want_loglik, vs.ref(acc),
+                           self.cache_bytes)
         else:
-            done = eng.map(parts.em_part, [self.parts[i] for i in order], self.tree_dir, eng.scatter(mu),
-                           want_loglik)
+            done = eng.map(parts.em_part, items, self.tree_dir, eng.scatter(mu), want_loglik)
             acc = np.zeros(len(mu), np.float64)
         res = [None] * len(order)
         for i, r in zip(order, done):
@@ -81,22 +89,24 @@ class DistributedStep:
         for r in res:  # part order: deterministic whatever the engine
             parts.add_partial(acc, r)
             total += r["loglik"]
+        release(acc)
         return acc, total
 
     def __call__(self, mu):
         self.evals += 1
         acc, total = self.partial(mu)
-        nxt, pen = em_update_penalty(mu, acc, self.P)
+        nxt, pen = self.vs.update_penalty(mu, acc, self.P)
         return nxt, total - pen
 
     def without_loglik(self, mu):
         self.evals += 1
         acc, _ = self.partial(mu, want_loglik=False)
-        return em_update(mu, acc, self.P), float("nan")
+        nxt, _ = self.vs.update_penalty(mu, acc, self.P)
+        return nxt, float("nan")
 
     def loglik(self, mu) -> float:
         _, total = self.partial(mu)
-        return total - penalty(mu, self.P)
+        return total - self.vs.penalty(mu, self.P)
 
 
 def _fit_phase(ctx, step, mu0, p, phase: str, work):
@@ -111,7 +121,7 @@ def _fit_phase(ctx, step, mu0, p, phase: str, work):
     start_iter = 0
     if RunStore.unit_done(work, ck_unit):
         info = RunStore.unit_info(work, ck_unit)
-        mu0 = load_npy(work / f"ckpt-{phase}.npy")
+        mu0 = step.vs.load(work / f"ckpt-{phase}.npy")
         trace0 = list(info["trace"])
         start_iter = int(info["iteration"])
     seen = list(trace0)
@@ -119,12 +129,12 @@ def _fit_phase(ctx, step, mu0, p, phase: str, work):
     def checkpoint(it, mu, ll):
         seen.append(float(ll))
         if p["checkpoint_every"] and it > start_iter and it % p["checkpoint_every"] == 0:
-            save_npy(work / f"ckpt-{phase}.npy", mu)
+            step.vs.save(mu, work / f"ckpt-{phase}.npy")
             RunStore.unit_commit(work, ck_unit, [f"ckpt-{phase}.npy"], {"iteration": it, "trace": seen[:-1]})
         return None
 
     return fit_em(step, step.loglik, mu0, tol=p["tol"], max_iter=p["max_iter"], accelerate=p["accelerate"],
-                  callback=checkpoint, trace0=trace0, start_iter=start_iter)
+                  callback=checkpoint, trace0=trace0, start_iter=start_iter, ops=step.vs)
 
 
 def run(ctx: StageContext) -> dict:
@@ -145,34 +155,35 @@ def run(ctx: StageContext) -> dict:
             del new_id  # written to trees/new_id.npy
             RunStore.unit_commit(work, "trees", ["trees/new_id.npy"] + [f"trees/{f}" for r in part_list
                                                                        for f in r["files"]], {"parts": part_list})
-        new_id = load_npy(tree_dir / "new_id.npy")
         sub.count(incidences=total_inc, tree_nodes=sum(r["nodes"] for r in part_list), parts=len(part_list))
-    inv = np.empty_like(new_id)
-    inv[new_id] = np.arange(len(new_id))
-    s_stage = sizes[inv].astype(np.float64)
-    P_stage = s_stage * (s_stage - 1.0) / 2.0  # the EM runs in the trees' numbering: position new_id[k] holds candidate k
     K = len(sizes)
-    del sizes, inv, s_stage, new_id  # candidate-length arrays the EM does not need (memory at scale)
-    step = DistributedStep(ctx, tree_dir, part_list, P_stage)
+    del sizes
+    budget = ctx.engine.task_memory()
+    # under a memory limit the candidate-length vectors live in files, a chunk at a time in memory
+    vs = Vectors(K, work / "vectors" if budget else None)
+    P_stage = _pairs_in_tree_order(vs, enum_dir / "cand_ptr.npy", tree_dir / "new_id.npy")
+    step = DistributedStep(ctx, tree_dir, part_list, P_stage, vs, budget // 5 if budget else None)  # tree cache
 
     with ctx.substep("start"):
-        acc, _ = step.partial(np.ones(K))
-        mu0 = acc / P_stage  # a new array: the step reuses its buffer  # each edge's weight shared equally among its candidates
+        acc, _ = step.partial(vs.full(1.0))
+        mu0 = vs.divide(acc, P_stage)  # each edge's weight shared equally among its candidates
     with ctx.substep("em") as sub:
         evals0 = step.evals
         full = _fit_phase(ctx, step, mu0, p, "full", work)
         sub.count(iterations=full.iterations, evaluations=step.evals - evals0, incidences=total_inc)
+    del mu0
     mu_full = full.mu
     full_iterations, full_converged, full_loglik, full_trace = full.iterations, full.converged, full.loglik, full.trace
     del full
     with ctx.substep("prune"):
-        mu = np.where(mu_full * P_stage < p["prune"], 0.0, mu_full)
-        restore = parts.restore_support(ctx.engine, part_list, str(tree_dir), mu, mu_full)
+        mu = vs.pruned(mu_full, P_stage, p["prune"])
+        restore = parts.restore_support(ctx.engine, part_list, str(tree_dir), vs.ref(mu), vs.ref(mu_full),
+                                        step.cache_bytes)
         mu[restore] = mu_full[restore]
-        pruned = int(((mu == 0) & (mu_full > 0)).sum())
+        pruned = vs.count_dropped(mu, mu_full)
         # the full model's mu goes to its output file now rather than staying in
         # memory through the refit (candidate-length arrays dominate at scale)
-        save_npy(work / "mu_full.npy", mu_full[load_npy(tree_dir / "new_id.npy")])
+        vs.gather_to_file(mu_full, tree_dir / "new_id.npy", work / "mu_full.npy")
         del mu_full
     with ctx.substep("refit") as sub:
         evals0 = step.evals
@@ -180,12 +191,13 @@ def run(ctx: StageContext) -> dict:
         sub.count(iterations=refit.iterations if pruned else 0, evaluations=step.evals - evals0,
                   incidences=total_inc)
     mu_fit = refit.mu if pruned else mu  # nothing pruned: the full model's mu is the fit
-    fitted_total = float(np.sum(mu_fit * P_stage))
-    del P_stage
-    mu = mu_fit[load_npy(tree_dir / "new_id.npy")]  # back to the candidates' own numbering
-    y = load_npy(enum_dir / "weight.npy", mmap=True)
-    const = float(loglik_constant(np.asarray(y)))
-    kept = int((mu > 0).sum())
+    del mu
+    fitted_total = vs.penalty(mu_fit, P_stage)
+    del P_stage, acc
+    step._acc = None
+    kept = vs.gather_to_file(mu_fit, tree_dir / "new_id.npy", work / "mu.npy")  # the candidates' own numbering
+    del mu_fit
+    const, weight_total = _weight_sums(enum_dir / "weight.npy")
     report = {
         "candidates": int(K),
         "groups_kept": kept,
@@ -201,7 +213,7 @@ def run(ctx: StageContext) -> dict:
         "loglik_full_model": float(full_loglik) + const,
         "loglik": float(refit.loglik if pruned else full_loglik) + const,
         "loglik_constant": const,
-        "weight_total": float(np.sum(y)),
+        "weight_total": weight_total,
         "fitted_total": fitted_total,
         "parts": len(part_list),
         "tree_nodes": int(sum(r["nodes"] for r in part_list)),
@@ -209,17 +221,42 @@ def run(ctx: StageContext) -> dict:
         "incidences": int(sum(r["incidences"] for r in part_list)),
         "accelerate": p["accelerate"],
     }
-    save_npy(work / "mu.npy", mu)
     write_json_atomic(work / "trace.json", {"full": [float(x) + const for x in full_trace],
                                              "kept": [float(x) + const for x in refit.trace] if pruned else []})
     write_json_atomic(work / "report.json", report)
+    del refit
     for f in work.glob("ckpt-*.npy"):
         f.unlink()
     parts.clear_cache()
     if not ctx.engine.in_process:
         ctx.engine.client.run(parts.clear_cache)
     shutil.rmtree(tree_dir, ignore_errors=True)
+    shutil.rmtree(work / "vectors", ignore_errors=True)
     return {k: report[k] for k in ("candidates", "groups_kept", "iterations", "converged", "loglik", "parts")}
+
+
+def _pairs_in_tree_order(vs: Vectors, cand_ptr_path, new_id_path):
+    """``P`` in the trees' numbering: position ``new_id[k]`` holds the pairs of candidate ``k``."""
+    P = vs.empty()
+    new_id = load_npy(new_id_path, mmap=True)
+    last = None
+    for lo, ptr in npy_blocks(cand_ptr_path, CHUNK):
+        sizes = np.diff(ptr, prepend=ptr[:1] if last is None else last).astype(np.float64)
+        sizes = sizes[1:] if last is None else sizes
+        start = lo - 1 if last is not None else lo
+        P[np.asarray(new_id[start:start + len(sizes)])] = sizes * (sizes - 1.0) / 2.0
+        release(P, new_id)
+        last = ptr[-1:]
+    return P
+
+
+def _weight_sums(path) -> tuple[float, float]:
+    """The log-likelihood's constant and the total weight, a chunk of edges at a time."""
+    const = total = 0.0
+    for _, y in npy_blocks(path, CHUNK):
+        const += float(loglik_constant(y))
+        total += float(np.sum(y))
+    return const, total
 
 
 def read_report(stage_dir) -> dict:
