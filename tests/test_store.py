@@ -413,17 +413,17 @@ def test_a_moved_run_directory_resumes_where_it_is(finished, tmp_path):
 
 @pytest.mark.parametrize("code, word", [(28, "no space left"), (30, "read-only"), (122, "quota")])
 def test_disk_errors_in_a_later_stage(finished, tmp_path, monkeypatch, code, word):
-    from cliquewise.stages import fit
+    from cliquewise.parts.vectors import Vectors
 
     run = _copy(finished, tmp_path)
     for st in ("fit", "results"):
         (run / st / "manifest.json").unlink()
-    real = fit.save_npy
+    real = Vectors.gather_to_file
 
-    def failing(path, arr):
+    def failing(self, x, index_path, path):  # the fit writing mu_full.npy / mu.npy
         raise OSError(code, os.strerror(code), str(path))
 
-    monkeypatch.setattr(fit, "save_npy", failing)
+    monkeypatch.setattr(Vectors, "gather_to_file", failing)
     rc, _, err = _run_cli("resume", run)
     lines = [ln for ln in err.splitlines() if ln.startswith("cliquewise:")]
     assert rc == 2 and len(lines) == 1, err
@@ -431,7 +431,7 @@ def test_disk_errors_in_a_later_stage(finished, tmp_path, monkeypatch, code, wor
     store = RunStore(run)
     assert all(store.verify(s)[0] for s in ("ingest", "split", "enumerate"))
     assert not store.verify("fit")[0] and not store.verify("results")[0]
-    monkeypatch.setattr(fit, "save_npy", real)
+    monkeypatch.setattr(Vectors, "gather_to_file", real)
     rerun = _resume(run)
     assert rerun["fit"] and not rerun["enumerate"]
     _assert_same(run, finished)

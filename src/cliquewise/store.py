@@ -257,6 +257,28 @@ def drop_mapped_pages(arrays: Iterable) -> None:
                 pass
 
 
+def gather_mapped(arr, idx, pieces: int = 64) -> np.ndarray:
+    """``arr[idx]`` for a memory-mapped ``arr``, mapping a small part of its file at a time.
+
+    The positions are visited in ascending order, ``pieces`` slices of them, and the
+    mapped pages are dropped after each slice, so what is mapped at once is about
+    the span of one slice, not every page the positions fall on.
+
+    >>> import numpy as np
+    >>> gather_mapped(np.arange(10) * 10, np.array([7, 1, 7, 3]), pieces=2).tolist()
+    [70, 10, 70, 30]
+    """
+    idx = np.asarray(idx)
+    order = np.argsort(idx, kind="stable")
+    ordered = idx[order]
+    out = np.empty(len(idx), arr.dtype)
+    step = max(1, -(-len(idx) // max(1, pieces)))
+    for a in range(0, len(idx), step):
+        out[order[a:a + step]] = arr[ordered[a:a + step]]
+        drop_mapped_pages((arr,))
+    return out
+
+
 def describe_outputs(folder: Path) -> dict[str, dict]:
     """Size and checksum of every file below ``folder`` (manifest excluded)."""
     out = {}
