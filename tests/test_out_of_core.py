@@ -1,16 +1,19 @@
-"""The enumerate stage in pieces: the same outputs whatever the memory budget.
+"""Runs in pieces under a memory budget: the same outputs whatever the budget.
 
 With a worker memory limit, the enumerate stage builds the CSR a range of rows at
 a time, sweeps units with the graph's mapped pages trimmed, and builds the
-incidence a range of edges at a time. Each piece is checked here with budgets
-small enough to force many ranges, against:
+incidence a range of edges at a time; the fit keeps its vectors in files (tested
+in ``test_vectors.py``). Each piece is checked here with budgets small enough to
+force many ranges, against:
 
 * scipy.sparse for the CSR (``csr_from_edges_reference`` lets scipy sort it);
 * numpy's ``np.quantile(..., method="lower")`` for quantile levels;
 * itertools.combinations of each candidate's members for the incidence;
 * the same stage without a budget (every array identical), and the union over
   thresholds of networkx ``find_cliques`` on networkx's ``les_miserables_graph``
-  (Knuth's co-appearance counts) for the candidates found under a tiny budget.
+  (Knuth's co-appearance counts) for the candidates found under a tiny budget;
+* a whole run of about 2M simulated edges on two worker processes limited to
+  1 GB each, against the embedded engine without a limit (identical tables).
 """
 
 from __future__ import annotations
@@ -180,3 +183,32 @@ def test_trimming_the_mapped_graph_changes_nothing(tmp_path):
     for name in parts.UNIT_ARRAYS:
         np.testing.assert_array_equal(load_npy(tmp_path / "a" / f"a.{name}.npy"),
                                       load_npy(tmp_path / "b" / f"b.{name}.npy"), err_msg=name)
+
+
+@pytest.mark.cluster
+def test_memory_limited_run_equals_the_unconstrained_run(tmp_path):
+    # a simulated export of about 2M edges, run by two worker processes limited to
+    # 1 GB each (dask's own limit: a worker that passes it is restarted, and the
+    # run would stop), and by the embedded engine without a limit: the same bytes
+    import subprocess
+    import sys
+
+    from cliquewise.simulate import simulate
+
+    simulate(tmp_path / "sim", nodes=150_000, seed=9, labels="int")
+    export = tmp_path / "sim" / "export"
+    runs = {"free": [], "limited": ["--workers", "2", "--threads", "1", "--memory-limit", "1GB"]}
+    for name, extra in runs.items():
+        proc = subprocess.run([sys.executable, "-m", "cliquewise.cli", "--quiet", "run", "--edges", str(export),
+                               "--run-dir", str(tmp_path / name), *extra], capture_output=True, text=True,
+                              timeout=900)
+        assert proc.returncode == 0, proc.stderr
+    edges = json.loads((tmp_path / "free" / "ingest" / "manifest.json").read_text())["counts"]["pairs"]
+    assert edges > 1_500_000
+    for table in ("nodes", "cliques", "members"):
+        pd.testing.assert_frame_equal(pd.read_parquet(tmp_path / "limited" / "results" / f"{table}.parquet"),
+                                      pd.read_parquet(tmp_path / "free" / "results" / f"{table}.parquet"),
+                                      check_exact=True)
+    for name in ("mu", "mu_full"):
+        np.testing.assert_array_equal(load_npy(tmp_path / "limited" / "fit" / f"{name}.npy"),
+                                      load_npy(tmp_path / "free" / "fit" / f"{name}.npy"))
