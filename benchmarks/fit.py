@@ -69,6 +69,7 @@ def sweep_bench(run_dir: Path, repeat: int) -> dict:
     from types import SimpleNamespace
 
     from cliquewise.parts import fitting
+    from cliquewise.parts.vectors import Vectors
     from cliquewise.stages.fit import DistributedStep
     from cliquewise.store import load_npy
 
@@ -115,7 +116,7 @@ def sweep_bench(run_dir: Path, repeat: int) -> dict:
             g = A_s.T @ (y / lam)
             return mu_s * g / P_s
 
-        step = DistributedStep(SimpleNamespace(engine=eng), tmp, parts, P_s)  # the stage's own step
+        step = DistributedStep(SimpleNamespace(engine=eng), tmp, parts, P_s, Vectors(K))  # the stage's own step
 
         def stage_step():
             return step.without_loglik(mu_s)[0]
