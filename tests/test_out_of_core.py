@@ -12,7 +12,7 @@ force many ranges, against:
 * the same stage without a budget (every array identical), and the union over
   thresholds of networkx ``find_cliques`` on networkx's ``les_miserables_graph``
   (Knuth's co-appearance counts) for the candidates found under a tiny budget;
-* a whole run of about 2M simulated edges on two worker processes limited to
+* a whole run of about 1.8M simulated edges on two worker processes limited to
   1 GB each, against the embedded engine without a limit (identical tables).
 """
 
@@ -187,7 +187,7 @@ def test_trimming_the_mapped_graph_changes_nothing(tmp_path):
 
 @pytest.mark.cluster
 def test_memory_limited_run_equals_the_unconstrained_run(tmp_path):
-    # a simulated export of about 2M edges, run by two worker processes limited to
+    # a simulated export of about 1.8M edges, run by two worker processes limited to
     # 1 GB each (dask's own limit: a worker that passes it is restarted, and the
     # run would stop), and by the embedded engine without a limit: the same bytes
     import subprocess
@@ -195,7 +195,7 @@ def test_memory_limited_run_equals_the_unconstrained_run(tmp_path):
 
     from cliquewise.simulate import simulate
 
-    simulate(tmp_path / "sim", nodes=150_000, seed=9, labels="int")
+    simulate(tmp_path / "sim", nodes=230_000, seed=9, labels="int")
     export = tmp_path / "sim" / "export"
     runs = {"free": [], "limited": ["--workers", "2", "--threads", "1", "--memory-limit", "1GB"]}
     for name, extra in runs.items():

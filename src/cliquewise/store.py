@@ -216,7 +216,7 @@ def load_npy(path: Path, mmap: bool = False) -> np.ndarray:
     try:
         return np.load(path, allow_pickle=False, mmap_mode="r" if mmap else None)
     except ValueError as exc:
-        if "allow_pickle" in str(exc):
+        if "allow_pickle" in str(exc) or "Python objects" in str(exc):  # mmap_mode refuses object arrays
             raise StoreError(f"{path} holds Python objects (pickle) and is not loaded; it was not written by "
                              f"cliquewise: delete the run directory and start again") from None
         raise
