@@ -279,7 +279,7 @@ _TREE_CACHE_LIMIT = 64
 
 
 def _load_tree(tree_dir: str, part: dict, cache_bytes: int | None = None):
-    """A part's tree arrays and stragglers, checked once and kept in this process
+    """A part's tree arrays and stragglers, checked when read and kept in this process
     between EM steps.
 
     Keyed by path and modification time, so a rewritten part is read again. The
@@ -293,17 +293,15 @@ def _load_tree(tree_dir: str, part: dict, cache_bytes: int | None = None):
     if hit is None:
         if len(_TREE_CACHE) >= _TREE_CACHE_LIMIT:
             _TREE_CACHE.clear()
-        arrays = tuple(load_npy(f) for f in files)
-        if cache_bytes is not None and sum(a.nbytes for v in _TREE_CACHE.values() for a in v) + sum(
-                a.nbytes for a in arrays) > cache_bytes:
-            check_tree(*arrays[:4], part["width"])
-            return arrays
-        check_tree(*arrays[:4], part["width"])
-        strag = arrays[4]
+        hit = tuple(load_npy(f) for f in files)
+        check_tree(*hit[:4], part["width"])
+        strag = hit[4]
         if len(strag) != part["width"] - (part["cand_hi"] - part["cand_lo"] + 1) or (
                 len(strag) and (strag.min() < 0 or strag.max() >= part["cand_lo"])):
             raise ValueError(f"{files[4]}: stragglers do not match the part")
-        hit = _TREE_CACHE[key] = arrays
+        held = sum(a.nbytes for v in _TREE_CACHE.values() for a in v)
+        if cache_bytes is None or held + sum(a.nbytes for a in hit) <= cache_bytes:
+            _TREE_CACHE[key] = hit
     return hit
 
 
