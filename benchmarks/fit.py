@@ -98,8 +98,9 @@ def sweep_bench(run_dir: Path, repeat: int) -> dict:
         eng = Engine(EngineSettings(progress=False))
         t = time.perf_counter()
         per_part = fitting.part_size(n_inc, 4_000_000)  # as the fit stage plans them
-        parts, new_id = fitting.prepare_trees(eng, str(d), tmp, np.diff(load_npy(d / "cand_ptr.npy")), per_part)
+        parts = fitting.prepare_trees(eng, str(d), tmp, per_part)
         prep_seconds = time.perf_counter() - t
+        new_id = load_npy(Path(tmp) / "new_id.npy")
         n_nodes = sum(p["nodes"] for p in parts)
         inv = np.empty_like(new_id)
         inv[new_id] = np.arange(K)

@@ -268,15 +268,44 @@ def gather_mapped(arr, idx, pieces: int = 64) -> np.ndarray:
     >>> gather_mapped(np.arange(10) * 10, np.array([7, 1, 7, 3]), pieces=2).tolist()
     [70, 10, 70, 30]
     """
+    return gather_mapped_many((arr,), idx, pieces)[0]
+
+
+def gather_mapped_many(arrays, idx, pieces: int = 64) -> list[np.ndarray]:
+    """:func:`gather_mapped` of several arrays of one length at the same positions
+    (one sort of the positions for all of them)."""
     idx = np.asarray(idx)
     order = np.argsort(idx, kind="stable")
     ordered = idx[order]
-    out = np.empty(len(idx), arr.dtype)
+    outs = [np.empty(len(idx), a.dtype) for a in arrays]
     step = max(1, -(-len(idx) // max(1, pieces)))
     for a in range(0, len(idx), step):
-        out[order[a:a + step]] = arr[ordered[a:a + step]]
+        o, at = order[a:a + step], ordered[a:a + step]
+        for arr, out in zip(arrays, outs):
+            out[o] = arr[at]
+        drop_mapped_pages(arrays)
+    return outs
+
+
+def scatter_mapped(arr, idx, values, pieces: int = 64) -> None:
+    """``arr[idx] = values`` for a memory-mapped ``arr`` opened for writing, touching a
+    small part of its file at a time (as :func:`gather_mapped` reads). Positions
+    must be distinct.
+
+    >>> import numpy as np
+    >>> a = np.zeros(5)
+    >>> scatter_mapped(a, np.array([4, 0, 2]), np.array([1.0, 2.0, 3.0]), pieces=2)
+    >>> a.tolist()
+    [2.0, 0.0, 3.0, 0.0, 1.0]
+    """
+    idx = np.asarray(idx)
+    values = np.asarray(values)
+    order = np.argsort(idx, kind="stable")
+    step = max(1, -(-len(idx) // max(1, pieces)))
+    for a in range(0, len(idx), step):
+        o = order[a:a + step]
+        arr[idx[o]] = values[o]
         drop_mapped_pages((arr,))
-    return out
 
 
 def describe_outputs(folder: Path) -> dict[str, dict]:

@@ -24,8 +24,9 @@ from pathlib import Path
 
 import numpy as np
 
-from cliquewise.kernels.prefixtree import (add_row_lengths, build_tree_keyed, candidate_rank, check_tree,
+from cliquewise.kernels.prefixtree import (add_row_lengths, build_tree_keyed, check_tree,
                                             first_seen_order, gather_rows, row_tops, tree_sweep, tree_unsupported)
+from cliquewise.parts.order import rank_by_size
 from cliquewise.parts.vectors import open_vector, release
 from cliquewise.store import NpyStream, drop_mapped_pages, load_npy, npy_blocks, resident_bytes, save_npy
 
@@ -173,24 +174,45 @@ def tree_part(part: dict, out_dir: str, budget: int | None = None) -> dict:
             "ends": int(len(tree[2]))}
 
 
-def number_candidates(part_list: list[dict], out_dir: str, n_cand: int) -> tuple[np.ndarray, list[int]]:
+def number_candidates(part_list: list[dict], out_dir: str, n_cand: int, budget: int | None = None) -> list[int]:
     """The candidates' new ids, by first use in the trees (parts in order).
 
-    Returns ``(new_id, first)`` where the candidates first used by part ``i`` are
-    numbered ``first[i] .. first[i + 1] - 1``. Candidates no tree uses (none in
-    practice: every candidate's pairs are edges) come last, in id order.
+    Writes ``{out_dir}/new_id.npy`` (int64) and returns ``first``: the candidates
+    first used by part ``i`` are numbered ``first[i] .. first[i + 1] - 1``.
+    Candidates no tree uses (none in practice: every candidate's pairs are edges)
+    come last, in id order. The ids are written into the mapped file; with
+    ``budget`` (bytes) its pages are dropped whenever the resident set passes it,
+    so the driver holds a block of a tree's ids, not the whole numbering.
     """
     out = Path(out_dir)
-    new_id = np.full(n_cand, -1, np.int64)
+    new_id = np.lib.format.open_memmap(out / "new_id.npy", mode="w+", dtype=np.int64, shape=(n_cand,))
+    for lo in range(0, n_cand, NUMBER_BLOCK):
+        new_id[lo:lo + NUMBER_BLOCK] = -1
+        drop_mapped_pages((new_id,))
+    ids = np.asarray(new_id)
     nxt = 0
     first = []
     for part in part_list:
         first.append(nxt)
-        nxt = first_seen_order(load_npy(_files(out, part["index"], "g")[0], mmap=True), new_id, nxt)
+        g = load_npy(_files(out, part["index"], "g")[0], mmap=True)
+        for lo in range(0, len(g), NUMBER_BLOCK):
+            nxt = first_seen_order(np.asarray(g[lo:lo + NUMBER_BLOCK]), ids, nxt)
+            if budget and resident_bytes() > budget:
+                drop_mapped_pages((new_id, g))
+        drop_mapped_pages((g,))
     first.append(nxt)
-    rest = np.flatnonzero(new_id < 0)
-    new_id[rest] = nxt + np.arange(len(rest))
-    return new_id, first
+    for lo in range(0, n_cand, NUMBER_BLOCK):
+        block = ids[lo:lo + NUMBER_BLOCK]
+        rest = np.flatnonzero(block < 0)
+        block[rest] = nxt + np.arange(len(rest))
+        nxt += len(rest)
+        drop_mapped_pages((new_id,))
+    new_id.flush()
+    del ids, new_id
+    return first
+
+
+NUMBER_BLOCK = 1 << 20
 
 
 def localize_part(part: dict, out_dir: str, new_id, own_lo: int, own_end: int) -> dict:
@@ -234,39 +256,29 @@ def localize_part(part: dict, out_dir: str, new_id, own_lo: int, own_end: int) -
             "stragglers": int(len(strag))}
 
 
-def prepare_trees(engine, enum_dir: str, tree_dir: str, sizes: np.ndarray, per_part: int,
-                  budget: int | None = None):
+def prepare_trees(engine, enum_dir: str, tree_dir: str, per_part: int, budget: int | None = None) -> list[dict]:
     """All of the fit's preparation: parts, their trees, the first-use numbering.
 
-    Returns ``(part_list, new_id)`` and writes ``new_id.npy``; the part files are in
+    Returns the part list and writes ``new_id.npy``; the part files are in
     ``tree_dir``. The candidates' list order (``rank.npy``, ``by_rank.npy``) and the
-    edges' tops (``top.npy``) go through files there, not through the driver, and
-    are removed once the trees are built. ``budget`` (bytes a task may hold) makes
-    the steps drop the pages of the incidence they have mapped as they go.
+    edges' tops (``top.npy``) are built a block at a time in files there
+    (:func:`cliquewise.parts.order.rank_by_size`) and removed once the trees are
+    built, so no step on the driver holds an array over all candidates.
+    ``budget`` (bytes a task may hold) makes the steps drop the pages they have
+    mapped as they go.
     """
     tree_dir = Path(tree_dir)
     tree_dir.mkdir(parents=True, exist_ok=True)
-    sizes = np.asarray(sizes, np.int64)
-    rank = candidate_rank(sizes * (sizes - 1) // 2)
-    n_cand = len(rank)
-    del sizes
-    small = np.int32 if n_cand < 2**31 else np.int64  # half the pages the tasks map when they look ranks up
-    save_npy(tree_dir / "rank.npy", rank.astype(small))
-    by_rank = np.empty(n_cand, small)  # the inverse permutation
-    by_rank[rank] = np.arange(n_cand, dtype=small)
-    del rank
-    save_npy(tree_dir / "by_rank.npy", by_rank)
-    del by_rank
+    n_cand = rank_by_size(Path(enum_dir) / "cand_ptr.npy", tree_dir / "rank.npy", tree_dir / "by_rank.npy")
     trim = budget * 2 // 5 if budget else None  # resident bytes at which mapped pages are dropped
     planned = engine.submit(plan_tree_parts, str(enum_dir), str(tree_dir), per_part, trim).result()
     built = engine.map(tree_part, planned, str(tree_dir), trim, desc="fit: prefix trees")
-    new_id, first = number_candidates(built, str(tree_dir), n_cand)
-    save_npy(tree_dir / "new_id.npy", new_id)
+    first = number_candidates(built, str(tree_dir), n_cand, trim)
     part_list = engine.map(_localize_item, [(b, first[i], first[i + 1]) for i, b in enumerate(built)],
                            str(tree_dir), desc="fit: numbering")
     for name in ("top", "rank", "by_rank"):
         (tree_dir / f"{name}.npy").unlink(missing_ok=True)
-    return part_list, new_id
+    return part_list
 
 
 def _localize_item(item, out_dir):

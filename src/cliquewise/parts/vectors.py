@@ -25,7 +25,7 @@ from pathlib import Path
 import numpy as np
 
 from cliquewise.kernels.em import em_update_penalty_into, penalty, squarem_norms, squarem_point_into
-from cliquewise.store import NpyStream, drop_mapped_pages, load_npy
+from cliquewise.store import NpyStream, drop_mapped_pages, gather_mapped, load_npy
 
 CHUNK = 1 << 22  # entries per chunk (32 MB of float64)
 
@@ -171,7 +171,8 @@ class Vectors:
         positive = 0
         with NpyStream(path, np.float64, len(index)) as f:
             for s in self.chunks():
-                got = np.asarray(x)[np.asarray(index[s])]
+                idx = np.asarray(index[s])
+                got = gather_mapped(x, idx) if self.in_files else np.asarray(x)[idx]
                 positive += int(np.count_nonzero(got > 0))
                 f.write(got)
                 release(x, index)

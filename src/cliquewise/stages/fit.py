@@ -31,7 +31,7 @@ from cliquewise.kernels.em import fit_em, loglik_constant
 from cliquewise.parts import fitting as parts
 from cliquewise.parts.vectors import CHUNK, Vectors, release
 from cliquewise.stage import StageContext
-from cliquewise.store import RunStore, load_npy, npy_blocks, read_json, write_json_atomic
+from cliquewise.store import RunStore, load_npy, npy_blocks, read_json, scatter_mapped, write_json_atomic
 
 NAME = "fit"
 UPSTREAM = ["enumerate"]
@@ -141,7 +141,7 @@ def run(ctx: StageContext) -> dict:
     p = ctx.params
     enum_dir = ctx.input_dir("enumerate")
     work = ctx.work
-    sizes = np.diff(load_npy(enum_dir / "cand_ptr.npy", mmap=True)).astype(np.int32)  # members per candidate
+    K = len(load_npy(enum_dir / "cand_ptr.npy", mmap=True)) - 1  # candidates
     inc_ptr = load_npy(enum_dir / "inc_ptr.npy", mmap=True)
     total_inc = int(inc_ptr[-1]) if len(inc_ptr) else 0
     per_part = parts.part_size(total_inc, p["incidences_per_part"])
@@ -150,14 +150,11 @@ def run(ctx: StageContext) -> dict:
         if RunStore.unit_done(work, "trees"):
             part_list = RunStore.unit_info(work, "trees")["parts"]
         else:
-            part_list, new_id = parts.prepare_trees(ctx.engine, str(enum_dir), str(tree_dir), sizes, per_part,
-                                                    ctx.engine.task_memory())
-            del new_id  # written to trees/new_id.npy
+            part_list = parts.prepare_trees(ctx.engine, str(enum_dir), str(tree_dir), per_part,
+                                            ctx.engine.task_memory())  # also writes trees/new_id.npy
             RunStore.unit_commit(work, "trees", ["trees/new_id.npy"] + [f"trees/{f}" for r in part_list
                                                                        for f in r["files"]], {"parts": part_list})
         sub.count(incidences=total_inc, tree_nodes=sum(r["nodes"] for r in part_list), parts=len(part_list))
-    K = len(sizes)
-    del sizes
     budget = ctx.engine.task_memory()
     # under a memory limit the candidate-length vectors live in files, a chunk at a time in memory
     vs = Vectors(K, work / "vectors" if budget else None)
@@ -244,7 +241,11 @@ def _pairs_in_tree_order(vs: Vectors, cand_ptr_path, new_id_path):
         sizes = np.diff(ptr, prepend=ptr[:1] if last is None else last).astype(np.float64)
         sizes = sizes[1:] if last is None else sizes
         start = lo - 1 if last is not None else lo
-        P[np.asarray(new_id[start:start + len(sizes)])] = sizes * (sizes - 1.0) / 2.0
+        dest = np.asarray(new_id[start:start + len(sizes)])
+        if vs.in_files:  # a slice of the file at a time, not every page of it at once
+            scatter_mapped(P, dest, sizes * (sizes - 1.0) / 2.0)
+        else:
+            P[dest] = sizes * (sizes - 1.0) / 2.0
         release(P, new_id)
         last = ptr[-1:]
     return P

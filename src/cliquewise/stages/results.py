@@ -14,12 +14,16 @@ candidate order), so ``clique_id < N`` are the N strongest groups.
 
 from __future__ import annotations
 
+import shutil
+
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
 from cliquewise.stage import StageContext
-from cliquewise.store import drop_mapped_pages, gather_mapped, load_npy, read_json, write_json_atomic
+from cliquewise.parts.order import descending_order
+from cliquewise.store import (NpyStream, drop_mapped_pages, gather_mapped, gather_mapped_many, load_npy, read_json,
+                             write_json_atomic)
 
 NAME = "results"
 UPSTREAM = ["ingest", "split", "enumerate", "fit"]
@@ -38,50 +42,53 @@ MEMBER_ROWS_PER_GROUP = 1 << 21
 CLIQUE_ROWS_PER_GROUP = 1 << 20
 
 
-def _write_cliques(path, order, sizes, mu, expected, total, levels, lmin, lmax) -> None:
+def _write_cliques(path, order, ptr, mu, expected, total, levels, lmin, lmax) -> None:
     """Write ``cliques.parquet`` (strongest first) one row group at a time, so the
-    column copies in clique order never exist for the whole table at once. ``mu``,
-    ``lmin`` and ``lmax`` are memory-mapped and read a slice of their files at a time
-    (:func:`~cliquewise.store.gather_mapped`)."""
+    column copies in clique order never exist for the whole table at once. Every
+    array is memory-mapped and read a slice of its file at a time
+    (:func:`~cliquewise.store.gather_mapped_many`)."""
     schema = pa.schema([("clique_id", pa.int64()), ("size", pa.int64()), ("intensity", pa.float64()),
                         ("expected_weight", pa.float64()), ("share", pa.float64()),
                         ("level_min", pa.float64()), ("level_max", pa.float64())])
     n = len(order)
     with pq.ParquetWriter(path, schema, compression="zstd") as writer:
         for i in range(0, max(n, 1), CLIQUE_ROWS_PER_GROUP):
-            o = order[i:i + CLIQUE_ROWS_PER_GROUP]
-            e = expected[o]
+            o = np.asarray(order[i:i + CLIQUE_ROWS_PER_GROUP])
+            drop_mapped_pages((order,))
+            start, end, m, e, lo, hi = gather_mapped_many((ptr[:-1], ptr[1:], mu, expected, lmin, lmax), o)
             writer.write_table(pa.table({
                 "clique_id": np.arange(i, i + len(o), dtype=np.int64),
-                "size": sizes[o].astype(np.int64),
-                "intensity": gather_mapped(mu, o),
+                "size": (end - start).astype(np.int64),
+                "intensity": m,
                 "expected_weight": e,
                 "share": e / total if total > 0 else np.zeros(len(o)),
-                "level_min": np.asarray(levels[gather_mapped(lmin, o)], np.float64) if len(levels)
-                else np.zeros(len(o)),
-                "level_max": np.asarray(levels[gather_mapped(lmax, o)], np.float64) if len(levels)
-                else np.zeros(len(o)),
+                "level_min": np.asarray(levels[lo], np.float64) if len(levels) else np.zeros(len(o)),
+                "level_max": np.asarray(levels[hi], np.float64) if len(levels) else np.zeros(len(o)),
             }, schema=schema))
 
 
-def _write_members(path, ptr, members, order: np.ndarray, sizes: np.ndarray, labels: pa.Array) -> int:
+def _write_members(path, ptr, members, order, labels: pa.Array) -> int:
     """Write ``members.parquet`` sorted by (clique_id, node_id), one row group at a time.
 
     Candidate ``order[i]`` becomes clique ``i``; its members are stored ascending,
-    so the table is the member slices concatenated in clique order. ``ptr`` and
-    ``members`` are memory-mapped and read a slice of their files at a time, so
-    memory stays proportional to one row group, not to the number of member rows.
+    so the table is the member slices concatenated in clique order. ``order``,
+    ``ptr`` and ``members`` are memory-mapped and read a slice of their files at a
+    time, so memory stays proportional to one row group, not to the number of
+    candidates or member rows.
     """
     schema = pa.schema([("clique_id", pa.int64()), ("node_id", pa.int64()), ("label", labels.type)])
     rows = 0
     with pq.ParquetWriter(path, schema, compression="zstd") as writer:
         i = 0
         while i < len(order):
-            sz = sizes[order[i:i + MEMBER_ROWS_PER_GROUP]].astype(np.int64)  # at least one row each
+            o = np.asarray(order[i:i + MEMBER_ROWS_PER_GROUP])
+            drop_mapped_pages((order,))
+            starts, ends = gather_mapped_many((ptr[:-1], ptr[1:]), o)
+            sz = (ends - starts).astype(np.int64)  # at least one row each
             k = int(np.searchsorted(np.cumsum(sz), MEMBER_ROWS_PER_GROUP, side="right"))
-            sz = sz[:max(k, 1)]
-            j = i + len(sz)
-            starts = gather_mapped(ptr, order[i:j])
+            k = max(k, 1)
+            sz, starts = sz[:k], starts[:k]
+            j = i + k
             first = np.cumsum(sz) - sz  # where each clique's rows start in this chunk
             idx = np.arange(int(sz.sum()), dtype=np.int64) + np.repeat(starts - first, sz)
             node = gather_mapped(members, idx).astype(np.int64)
@@ -96,24 +103,33 @@ def _write_members(path, ptr, members, order: np.ndarray, sizes: np.ndarray, lab
     return rows
 
 
-def _sizes_and_expected(cand_ptr_path, mu_path) -> tuple[np.ndarray, np.ndarray]:
-    """Members per candidate (int32) and expected weight ``mu * s (s - 1) / 2``, a
-    block of candidates at a time."""
+def _write_expected(cand_ptr_path, mu_path, out_path) -> float:
+    """Write each candidate's expected weight ``mu * s (s - 1) / 2`` to ``out_path``,
+    a block of candidates at a time; returns their total (block sums added in order)."""
     ptr = load_npy(cand_ptr_path, mmap=True)
     mu = load_npy(mu_path, mmap=True)
     n = len(ptr) - 1
-    sizes = np.empty(n, np.int32)
-    expected = np.empty(n, np.float64)
-    for lo in range(0, n, BLOCK):
-        hi = min(n, lo + BLOCK)
-        s = np.diff(np.asarray(ptr[lo:hi + 1]))
-        sizes[lo:hi] = s
-        expected[lo:hi] = np.asarray(mu[lo:hi]) * (s * (s - 1) / 2.0)
-        drop_mapped_pages((ptr, mu))
-    return sizes, expected
+    total = 0.0
+    with NpyStream(out_path, np.float64, n) as f:
+        for lo in range(0, n, BLOCK):
+            hi = min(n, lo + BLOCK)
+            s = np.diff(np.asarray(ptr[lo:hi + 1]))
+            e = np.asarray(mu[lo:hi]) * (s * (s - 1) / 2.0)
+            total += float(e.sum())
+            f.write(e)
+            drop_mapped_pages((ptr, mu))
+    return total
 
 
 BLOCK = 1 << 22
+SORT_SHARE = 256  # under a memory limit, sort at most (task memory / SORT_SHARE) candidates at once
+
+
+def sort_rows(ctx: StageContext, n_cand: int) -> int:
+    """Candidates sorted in memory at once: all of them without a memory limit; under
+    one, about 40 bytes each in a 256th of a task's memory (the driver's share)."""
+    budget = ctx.engine.task_memory()
+    return max(1 << 16, budget // SORT_SHARE) if budget else max(1, n_cand)
 
 
 def run(ctx: StageContext) -> dict:
@@ -131,24 +147,30 @@ def run(ctx: StageContext) -> dict:
             "strength": nodes.column("strength"),
         })
         pq.write_table(table, out / "nodes.parquet", compression="zstd")
-    with ctx.substep("cliques"):
+    scratch = out / "scratch"  # the order and the expected weights: removed before the stage ends
+    scratch.mkdir(exist_ok=True)
+    ptr = load_npy(enu / "cand_ptr.npy", mmap=True)
+    with ctx.substep("cliques") as step:
         levels = load_npy(enu / "levels.npy")
         lmin = load_npy(enu / "level_min.npy", mmap=True)
         lmax = load_npy(enu / "level_max.npy", mmap=True)
         mu = load_npy(fit / "mu.npy", mmap=True)
-        sizes, expected = _sizes_and_expected(enu / "cand_ptr.npy", fit / "mu.npy")
-        total = float(expected.sum())
-        np.negative(expected, out=expected)  # sign flips are exact: no copy of the array to sort
-        order = np.argsort(expected, kind="stable")  # strongest first, ties by candidate id
-        np.negative(expected, out=expected)
-        _write_cliques(out / "cliques.parquet", order, sizes, mu, expected, total, levels, lmin, lmax)
         n_cand = len(mu)
-        del expected, lmin, lmax, mu
+        total = _write_expected(enu / "cand_ptr.npy", fit / "mu.npy", scratch / "expected.npy")
+        # strongest first, ties by candidate id, sorting at most `rows` at a time
+        passes = descending_order(scratch / "expected.npy", scratch / "order.npy", sort_rows(ctx, n_cand))
+        step.count(candidates=n_cand, passes=passes)
+        order = load_npy(scratch / "order.npy", mmap=True)
+        _write_cliques(out / "cliques.parquet", order, ptr, mu, load_npy(scratch / "expected.npy", mmap=True),
+                       total, levels, lmin, lmax)
+        del lmin, lmax, mu
     members = load_npy(enu / "cand_nodes.npy", mmap=True)
     with ctx.substep("members") as step:
-        rows = _write_members(out / "members.parquet", load_npy(enu / "cand_ptr.npy", mmap=True), members, order,
-                              sizes, labels)
+        rows = _write_members(out / "members.parquet", ptr, members, order, labels)
         step.count(rows=rows)
+    n_members = len(members)
+    del order, members, ptr
+    shutil.rmtree(scratch)
     ing_report = read_json(ing / "report.json")
     fit_report = read_json(fit / "report.json")
     timings = {}
@@ -173,4 +195,4 @@ def run(ctx: StageContext) -> dict:
         "caution": CAUTION,
     }
     write_json_atomic(out / "summary.json", summary)
-    return {"cliques": int(n_cand), "groups_kept": summary["groups_kept"], "member_rows": int(len(members))}
+    return {"cliques": int(n_cand), "groups_kept": summary["groups_kept"], "member_rows": int(n_members)}

@@ -1,0 +1,170 @@
+"""Orders over the candidates, built a block at a time from files.
+
+A 50M-edge export has tens of millions of candidates; the driver must not hold
+an array over all of them. The two orders the pipeline needs are built here from
+``.npy`` files, writing ``.npy`` files, with memory bounded by a block size:
+
+* :func:`rank_by_size`: the fit's list order (most members first, ties by id),
+  the same order as :func:`cliquewise.kernels.prefixtree.candidate_rank` of the
+  pairs. A counting sort: the keys are sizes, which take few values, so one pass
+  counts them and a second writes each candidate's rank and the inverse (one
+  sequential write cursor per size).
+* :func:`descending_order`: the results' order, largest key first, ties by id,
+  the same as ``np.argsort(-key, kind="stable")`` for keys ``>= 0``. An external
+  distribution sort: a histogram of the keys' bit patterns (for non-negative
+  floats, the order of the bits is the order of the values) cuts the key range
+  into ranges of at most ``rows`` candidates, refining any range that is still
+  too large; each range is then selected in one pass and sorted in memory. A run
+  of equal keys larger than ``rows`` (the pruned candidates, all 0) is written in
+  id order without sorting.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numba
+import numpy as np
+
+from cliquewise.store import NpyStream, drop_mapped_pages, npy_blocks
+
+BLOCK = 1 << 22  # candidates per block read
+BITS = 16  # histogram bins per refinement: 2**BITS
+
+
+# -- the fit's list order -------------------------------------------------------
+def _sizes(cand_ptr_path, block: int):
+    """Yield ``(start, sizes)`` of consecutive candidates from ``cand_ptr.npy``."""
+    last = None
+    for lo, ptr in npy_blocks(cand_ptr_path, block):
+        if last is None:
+            if len(ptr) > 1:
+                yield lo, np.diff(ptr)
+        else:
+            yield lo - 1, np.diff(ptr, prepend=last)
+        last = ptr[-1:]
+
+
+def rank_by_size(cand_ptr_path, rank_path, by_rank_path, block: int = BLOCK) -> int:
+    """Write ``rank`` and its inverse ``by_rank`` for the candidates of ``cand_ptr.npy``.
+
+    Ordered by size, largest first, ties by id; ``rank[k]`` is candidate ``k``'s
+    position and ``by_rank[r]`` the candidate at position ``r`` (int32 below
+    2**31 candidates, else int64). Sizes 0 and 1 tie, as their pairs (0) do.
+    Memory: two blocks and a count per size. Returns the number of candidates.
+    """
+    counts = np.zeros(2, np.int64)
+    n = 0
+    for _, s in _sizes(cand_ptr_path, block):
+        key = np.maximum(s, 1)
+        top = int(key.max(initial=0))
+        if top >= len(counts):
+            counts = np.concatenate([counts, np.zeros(top + 1 - len(counts), np.int64)])
+        counts[:top + 1] += np.bincount(key, minlength=top + 1)
+        n += len(s)
+    # start of each size's positions: the largest size first
+    start = np.zeros(len(counts), np.int64)
+    start[:-1] = np.cumsum(counts[::-1])[::-1][1:]
+    dtype = np.int32 if n < 2**31 else np.int64
+    by_rank = np.lib.format.open_memmap(Path(by_rank_path), mode="w+", dtype=dtype, shape=(n,))
+    try:
+        with NpyStream(rank_path, dtype, n) as f_rank:
+            for lo, s in _sizes(cand_ptr_path, block):
+                rank = np.empty(len(s), dtype)
+                _place(np.maximum(s, 1), lo, start, rank, np.asarray(by_rank))
+                f_rank.write(rank)
+                drop_mapped_pages((by_rank,))
+        by_rank.flush()
+    finally:
+        del by_rank
+    return n
+
+
+@numba.njit(nogil=True, cache=True)
+def _place(key, lo, start, rank, by_rank):
+    """Counting sort's second pass over one block: ``start[key]`` is the next free
+    position of that key; candidate ``lo + i`` takes it."""
+    for i in range(key.shape[0]):
+        r = start[key[i]]
+        start[key[i]] = r + 1
+        rank[i] = r
+        by_rank[r] = lo + i
+
+
+# -- the results' order ---------------------------------------------------------
+def _bits(key: np.ndarray) -> np.ndarray:
+    """The sortable bit patterns of non-negative floats (``-0.0`` becomes ``0.0``)."""
+    k = np.asarray(key, np.float64) + 0.0
+    return k.view(np.uint64)
+
+
+def descending_order(key_path, out_path, rows: int, block: int = BLOCK) -> int:
+    """Write to ``out_path`` (int64 ``.npy``) the positions of the keys in
+    ``key_path`` (float64 ``.npy``, finite, ``>= 0``), largest key first, ties by
+    position: ``np.argsort(-key, kind="stable")``, with at most about ``rows``
+    positions sorted in memory at a time. Returns the number of passes over the
+    key file (a measure of the work)."""
+    n = 0
+    lo_bits, hi_bits = None, None
+    for _, k in npy_blocks(key_path, block):
+        if len(k) == 0:
+            continue
+        if not np.all(np.isfinite(k)) or np.any(k < 0):
+            raise ValueError(f"{key_path}: keys must be finite and >= 0")
+        u = _bits(k)
+        lo_bits = int(u.min()) if lo_bits is None else min(lo_bits, int(u.min()))
+        hi_bits = int(u.max()) if hi_bits is None else max(hi_bits, int(u.max()))
+        n += len(k)
+    sorter = _Sorter(key_path, max(1, int(rows)), block)
+    with NpyStream(out_path, np.int64, n) as out:
+        if n:
+            sorter.emit(lo_bits, hi_bits, n, out)
+    return sorter.passes + 1
+
+
+class _Sorter:
+    def __init__(self, key_path, rows: int, block: int):
+        self.key_path = key_path
+        self.rows = rows
+        self.block = block
+        self.passes = 0
+
+    def _select(self, lo: int, hi: int):
+        """Yield, block by block, the positions whose key bits lie in ``[lo, hi]`` and the bits."""
+        self.passes += 1
+        ulo, uhi = np.uint64(lo), np.uint64(hi)
+        for start, k in npy_blocks(self.key_path, self.block):
+            u = _bits(k)
+            pos = np.flatnonzero((u >= ulo) & (u <= uhi))
+            yield pos + start, u[pos]
+
+    def emit(self, lo: int, hi: int, count: int, out: NpyStream) -> None:
+        """Write the positions with key bits in ``[lo, hi]`` (``count`` of them), largest first."""
+        if lo == hi:  # one key: ties in position order, as selected
+            for pos, _ in self._select(lo, hi):
+                out.write(pos)
+            return
+        if count <= self.rows:
+            got = list(self._select(lo, hi))
+            pos = np.concatenate([p for p, _ in got]) if got else np.zeros(0, np.int64)
+            u = np.concatenate([b for _, b in got]) if got else np.zeros(0, np.uint64)
+            out.write(pos[np.argsort(~u, kind="stable")])  # ~u: descending, ties keep position order
+            return
+        shift = max(0, (hi - lo).bit_length() - BITS)
+        counts = np.zeros(((hi - lo) >> shift) + 1, np.int64)
+        ulo = np.uint64(lo)
+        for _, u in self._select(lo, hi):
+            counts += np.bincount(((u - ulo) >> np.uint64(shift)).astype(np.int64), minlength=len(counts))
+        b = len(counts) - 1
+        while b >= 0:  # bins from the largest keys down, grouped into ranges of at most rows
+            if counts[b] == 0:
+                b -= 1
+                continue
+            a, total = b, 0
+            while a >= 0 and total + counts[a] <= self.rows:
+                total += int(counts[a])
+                a -= 1
+            if a == b:  # one bin too large on its own: refine it
+                a, total = b - 1, int(counts[b])
+            self.emit(lo + ((a + 1) << shift), min(hi, lo + ((b + 1) << shift) - 1), total, out)
+            b = a
