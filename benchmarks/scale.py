@@ -13,7 +13,8 @@ memory-limited run on a LocalCluster, measured in one run of this script.
    with processes that spill to local disk) in a child process, with the resident
    memory of the whole process tree sampled every 0.2 s from ``/proc``. Prints
    whether it completed, the total peak RSS (target <= 4 GiB) and, with
-   ``--compare``, whether its results tables equal an unconstrained run's.
+   ``--compare``, whether its results tables equal an unconstrained run's, and the
+   driver process's own peak per stage (from the stage manifests).
 
     python benchmarks/scale.py [--sizes 1e5,1e6,1e7] [--skip-limited] [--limited-edges 5e7]
 """
@@ -91,6 +92,18 @@ def same_results(a: Path, b: Path) -> bool:
     return True
 
 
+def driver_peaks(run_dir: Path) -> dict:
+    """Each stage's peak resident memory of the driver process alone, from the manifests
+    (the workers' peaks are recorded apart: ``peak_rss_workers_bytes``)."""
+    out = {}
+    for stage in ("ingest", "split", "enumerate", "fit", "results"):
+        man = run_dir / stage / "manifest.json"
+        if man.exists():
+            prof = json.loads(man.read_text())["profile"]
+            out[stage] = prof.get("peak_rss_driver_bytes", prof.get("peak_rss_bytes"))
+    return out
+
+
 def limited_run(edges: int, memory_limit: str, workers: int, timeout: float, compare: bool) -> dict:
     from cliquewise.simulate import nodes_for_edges, simulate
 
@@ -106,6 +119,7 @@ def limited_run(edges: int, memory_limit: str, workers: int, timeout: float, com
                completed=res["returncode"] == 0 and (run_dir / "results" / "manifest.json").exists())
     if res["completed"]:
         res["edges"] = json.loads((run_dir / "ingest" / "manifest.json").read_text())["counts"]["pairs"]
+        res["driver_peak_bytes"] = driver_peaks(run_dir)
         if compare:
             free = run_watched(cli + ["--run-dir", str(folder / "run-free")], timeout)
             res["unconstrained"] = free
@@ -152,6 +166,9 @@ def main() -> int:
               f"{lim['edges_target']:,} edges): {'completed' if lim['completed'] else 'DID NOT COMPLETE'} in "
               f"{lim['wall_seconds']:.0f} s, total peak RSS of all processes {lim['peak_rss_bytes'] / 2**30:.2f} GiB "
               f"(target <= 4 GiB)" + ("" if lim["completed"] else f"; last lines: {lim['stderr_tail']}"))
+        if lim.get("driver_peak_bytes"):
+            print("driver's own peak RSS per stage: " + ", ".join(
+                f"{k} {v / 2**20:.0f} MB" for k, v in lim["driver_peak_bytes"].items()))
         if "equal_to_unconstrained" in lim:
             print(f"results equal to the unconstrained run: {lim['equal_to_unconstrained']}")
         result["limited"] = lim
