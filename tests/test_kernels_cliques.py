@@ -25,6 +25,7 @@ from cliquewise.kernels.cliques import (
     maximal_cliques,
     maximal_cliques_reference,
     sweep_candidates,
+    sweep_with_ranges,
 )
 from cliquewise.kernels.graph import csr_from_edges
 
@@ -422,3 +423,46 @@ def test_level_min_with_a_hub_member_and_read_only_arrays():
         ref = level_min_reference(u, v, lev, pp, xx)
         np.testing.assert_array_equal(got, ref)
     assert np.any(got > 0) and np.any(got == 0)
+
+
+# ------------------------------------------------------------- sweep with ranges
+def _pair_edges_reference(u, v, ptr, nodes):
+    """Edge id of each member pair (i < j in member order), from a plain dict."""
+    edge_of = {(int(a), int(b)): e for e, (a, b) in enumerate(zip(u, v))}
+    out = []
+    for k in range(len(ptr) - 1):
+        m = [int(x) for x in nodes[ptr[k]:ptr[k + 1]]]
+        out += [edge_of[(m[i], m[j])] for i in range(len(m)) for j in range(i + 1, len(m))]
+    return np.array(out, np.int64)
+
+
+def _check_ranges(n, u, v, lev, small=64, split=1024, cuts=None):
+    csr = csr_from_edges(n, u, v, lev)
+    cuts = [0, len(u)] if cuts is None else cuts
+    for lo, hi in zip(cuts[:-1], cuts[1:]):
+        want = sweep_candidates(*csr, u, v, lev, lo, hi, _small=small, _split=split)
+        got = sweep_with_ranges(*csr, u, v, lev, lo, hi, _small=small, _split=split)
+        for a, b in zip(want, got[:5]):
+            np.testing.assert_array_equal(a, b)
+        ptr, nodes = got[0], got[1]
+        # references: level_min_reference (every outside vertex checked in plain
+        # Python) and a dict from node pair to edge id
+        np.testing.assert_array_equal(got[5], level_min_reference(u, v, lev, ptr, nodes))
+        np.testing.assert_array_equal(got[6], _pair_edges_reference(u, v, ptr, nodes))
+
+
+@settings(max_examples=150, deadline=None)
+@given(weighted_graphs(), st.sampled_from(PATHS))
+def test_sweep_with_ranges_gives_level_min_and_pair_edges_of_the_references(graph, path):
+    n, u, v, lev, rng = graph
+    cuts = sorted(set(rng.integers(0, len(u) + 1, 3).tolist()) | {0, len(u)})
+    _check_ranges(n, u, v, lev, small=path[0], split=path[1], cuts=cuts)
+
+
+@pytest.mark.parametrize("make", [nx.les_miserables_graph, nx.karate_club_graph])
+@pytest.mark.parametrize("small, split", PATHS)
+def test_sweep_with_ranges_on_shipped_graphs(make, small, split):
+    # networkx's shipped weighted graphs (Les Miserables co-appearances; Zachary's karate club)
+    n, u, v, w, lev = from_networkx(make())
+    order = np.argsort(-lev, kind="stable")  # as the stage sweeps: high levels first
+    _check_ranges(n, u[order], v[order], lev[order], small=small, split=split)

@@ -25,6 +25,10 @@ What lives here
     of some ``G_l`` is listed once over all edges, with ``level_max`` = its
     smallest edge level (a clique maximal in ``G_t`` stays maximal in the smaller
     graph ``G_{level_max}``, as ``t <= level_max``).
+``sweep_with_ranges``
+    The sweep, also giving each clique's ``level_min`` and its pairs' edge ids,
+    worked out per edge from the common neighbourhood just intersected (what the
+    enumerate stage runs).
 ``level_min`` / ``level_max_of``
     The lowest level at which a listed clique is still maximal (by sorted-row
     intersection from its member of smallest degree), and its smallest internal
@@ -73,6 +77,7 @@ __all__ = [
     "maximal_cliques",
     "maximal_cliques_reference",
     "sweep_candidates",
+    "sweep_with_ranges",
     "candidates_reference",
     "level_min",
     "level_min_reference",
@@ -231,7 +236,7 @@ def maximal_cliques_reference(n, u, v):
 # --------------------------------------------------------------------------
 @numba.njit(nogil=True, cache=True)
 def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
-                  max_cliques, max_work, small_max, split_at):
+                  max_cliques, max_work, small_max, split_at, ranges):
     sm = np.empty(SM_SIZE, np.uint64)
     inv = np.empty(SMALL, np.int64)
     cbuf = np.empty(SMALL + 3, np.int64)
@@ -248,6 +253,13 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
     lidx = np.empty(64, np.int64)
     Pglob = np.empty(64, np.int64)
     pre = np.empty(2, np.int64)
+    # with ranges: each clique's level_min and its pairs' edge ids (_range_and_pairs)
+    xs = np.empty(128, np.int64)
+    ms = np.empty(128, np.int32)
+    tpos = np.empty(66, np.int64)
+    lmin = np.empty(1024 if ranges else 0, np.int32)
+    pairs = np.empty(4096 if ranges else 0, np.int64)
+    n_pairs = np.int64(0)
     e = edge_lo
     while e < edge_hi:
         a = u[e]
@@ -265,6 +277,10 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
             ex = np.empty(2 * need, np.bool_)
             lidx = np.empty(2 * need, np.int64)
             Pglob = np.empty(2 * need, np.int64)
+            if ranges:
+                xs = np.empty(4 * need, np.int64)
+                ms = np.empty(4 * need, np.int32)
+                tpos = np.empty(2 * need + 2, np.int64)
         m, wk = _isect(nbr, alo, ahi, nbr, blo, bhi, posA, posB)
         cnt[2] += wk
         # S = common neighbours in G_l; ex = joined to a or b by an earlier edge of
@@ -329,6 +345,15 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
                 lvl = grown(lvl, K0)
             for k in range(K0, K1):
                 lvl[k] = l
+            if ranges and cnt[3] == OK:
+                while lmin.shape[0] < K1:
+                    lmin = grown(lmin, K0)
+                for k in range(K0, K1):
+                    sz = ptr[k + 1] - ptr[k]
+                    while pairs.shape[0] < n_pairs + sz * (sz - 1) // 2:
+                        pairs = grown(pairs, n_pairs)
+                    lmin[k], n_pairs = _range_and_pairs(indptr, nbr, nlev, eid, a, b, np.int64(e), m, posA, posB,
+                                                        ptr, nodes, k, xs, ms, tpos, pairs, n_pairs)
         if cnt[3] != OK:
             break
         if cnt[2] > max_work:
@@ -337,11 +362,12 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
         e += 1
     K = cnt[0]
     return (ptr[: K + 1].copy(), nodes[: cnt[1]].copy(), lvl[:K].copy(),
-            np.int64(cnt[3]), np.int64(cnt[2]))
+            np.int64(cnt[3]), np.int64(cnt[2]), lmin[:K].copy() if ranges else lmin,
+            pairs[:n_pairs].copy())
 
 
 def sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
-                     max_cliques=None, max_work=None, *, _small=SMALL, _split=SPLIT):
+                     max_cliques=None, max_work=None, *, _small=SMALL, _split=SPLIT, _ranges=False):
     """Candidate cliques first seen at the level of each edge in a block.
 
     For every edge ``e`` in ``[edge_lo, edge_hi)`` (indices into ``u``/``v``/``lev``)
@@ -399,17 +425,139 @@ def sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
         raise ValueError("edge block out of range")
     mc = NO_LIMIT if max_cliques is None else np.int64(max_cliques)
     mw = NO_LIMIT if max_work is None else np.int64(max_work)
-    ptr, nodes, lvl, status, work = _sweep_kernel(
+    ptr, nodes, lvl, status, work, lmin, pairs = _sweep_kernel(
         np.asarray(indptr, np.int64), nbr, nlev, eid, u, v, lev,
         np.int64(edge_lo), np.int64(edge_hi), mc, mw, np.int64(_small),
-        np.int64(_split))
+        np.int64(_split), bool(_ranges))
+    if _ranges:
+        return ptr, nodes, lvl, int(status), int(work), lmin, pairs
     return ptr, nodes, lvl, int(status), int(work)
+
+
+def sweep_with_ranges(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
+                      max_cliques=None, max_work=None, *, _small=SMALL, _split=SPLIT):
+    """:func:`sweep_candidates`, also returning each clique's :func:`level_min` and the
+    edge ids of its member pairs as
+    :func:`cliquewise.kernels.incidence.candidate_pairs` gives them (int64).
+
+    Returns ``(ptr, nodes, level_max, status, work_done, level_min, pair_edges)``;
+    the last two are complete only when ``status`` is 0. They are worked out for
+    each edge's cliques right after the search, from the common neighbourhood it
+    has just intersected (see ``_range_and_pairs``), which costs less than the
+    separate passes.
+    """
+    return sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi, max_cliques, max_work,
+                            _small=_small, _split=_split, _ranges=True)
 
 
 
 # --------------------------------------------------------------------------
 # level range of a candidate
 # --------------------------------------------------------------------------
+@numba.njit(nogil=True, cache=True)
+def _narrow(indptr, nbr, nlev, c, xs, ms, src, dst, na):
+    """Of the survivors ``xs[src:src + na]`` (ascending) keep those in the row of
+    ``c``, lowering their running minimum level ``ms``; write them at ``dst`` and
+    return how many are left. A merge, or binary searches when few survivors meet
+    a long row."""
+    q = np.int64(indptr[c])
+    qe = np.int64(indptr[c + 1])
+    nn = np.int64(0)
+    if na * bit_length(qe - q) < na + qe - q:
+        for t in range(na):
+            x = xs[src + t]
+            a = q
+            b = qe
+            while a < b:
+                mid = (a + b) >> 1
+                if nbr[mid] < x:
+                    a = mid + 1
+                else:
+                    b = mid
+            if a < qe and nbr[a] == x:
+                xs[dst + nn] = x
+                ms[dst + nn] = min(ms[src + t], nlev[a])
+                nn += 1
+                a += 1
+            q = a
+    else:
+        t = np.int64(0)
+        while t < na and q < qe:
+            x = xs[src + t]
+            y = nbr[q]
+            if x == y:
+                xs[dst + nn] = x
+                ms[dst + nn] = min(ms[src + t], nlev[q])
+                nn += 1
+                t += 1
+                q += 1
+            elif x < y:
+                t += 1
+            else:
+                q += 1
+    return nn
+
+
+@numba.njit(nogil=True, cache=True)
+def _range_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, nodes, k, xs, ms, tpos,
+                     pairs, w):
+    """``level_min`` and the member pairs' edge ids of clique ``k``, listed from edge
+    ``e = (a, b)`` whose full common neighbourhood is ``nbr[posA[:m]]``.
+
+    The same values as :func:`level_min` and
+    :func:`cliquewise.kernels.incidence.pair_edges`, with less work: a vertex that
+    extends the clique is a common neighbour of ``a`` and ``b``, so the survivors
+    start as that neighbourhood less the members (with their levels to ``a`` and
+    ``b`` already at hand) and only the other members' rows are searched; the pairs
+    with ``a`` or ``b`` read their edge ids off the same positions. Writes the pairs
+    at ``pairs[w:]`` and returns ``(level_min, w + pairs written)``.
+    """
+    lo = ptr[k]
+    hi = ptr[k + 1]
+    cap = xs.shape[0] // 2
+    na = np.int64(0)
+    h = lo
+    for t in range(m):  # both ascending: a merge
+        x = nbr[posA[t]]
+        while h < hi and nodes[h] < x:
+            h += 1
+        if h < hi and nodes[h] == x:
+            tpos[h - lo] = t
+            continue
+        xs[na] = x
+        ms[na] = min(nlev[posA[t]], nlev[posB[t]])
+        na += 1
+    src = np.int64(0)
+    dst = cap
+    for i in range(lo, hi):
+        if na == 0:
+            break
+        c = nodes[i]
+        if c == a or c == b:
+            continue
+        na = _narrow(indptr, nbr, nlev, c, xs, ms, src, dst, na)
+        src, dst = dst, src
+    mx = np.int32(-1)
+    for t in range(na):
+        mx = max(mx, ms[src + t])
+    for i in range(lo, hi - 1):
+        ci = nodes[i]
+        for j in range(i + 1, hi):
+            cj = nodes[j]
+            if ci == a or ci == b:
+                if cj == a or cj == b:
+                    pe = e
+                else:
+                    pe = eid[posA[tpos[j - lo]]] if ci == a else eid[posB[tpos[j - lo]]]
+            elif cj == a or cj == b:
+                pe = eid[posA[tpos[i - lo]]] if cj == a else eid[posB[tpos[i - lo]]]
+            else:
+                pe = eid[find_edge(indptr, nbr, ci, cj)]
+            pairs[w] = pe
+            w += 1
+    return mx + 1, w
+
+
 @numba.njit(nogil=True, cache=True)
 def _level_min_kernel(indptr, nbr, nlev, ptr, nodes):
     K = ptr.shape[0] - 1
@@ -458,43 +606,7 @@ def _level_min_kernel(indptr, nbr, nlev, ptr, nodes):
                 break
             if i == i0:
                 continue
-            q = np.int64(indptr[nodes[i]])
-            qe = np.int64(indptr[nodes[i] + 1])
-            nn = np.int64(0)
-            if na * bit_length(qe - q) < na + qe - q:
-                # few survivors, long row: binary search from the last hit
-                for t in range(na):
-                    x = xs[src + t]
-                    a = q
-                    b = qe
-                    while a < b:
-                        mid = (a + b) >> 1
-                        if nbr[mid] < x:
-                            a = mid + 1
-                        else:
-                            b = mid
-                    if a < qe and nbr[a] == x:
-                        xs[dst + nn] = x
-                        ms[dst + nn] = min(ms[src + t], nlev[a])
-                        nn += 1
-                        a += 1
-                    q = a
-            else:
-                t = np.int64(0)
-                while t < na and q < qe:
-                    x = xs[src + t]
-                    y = nbr[q]
-                    if x == y:
-                        xs[dst + nn] = x
-                        ms[dst + nn] = min(ms[src + t], nlev[q])
-                        nn += 1
-                        t += 1
-                        q += 1
-                    elif x < y:
-                        t += 1
-                    else:
-                        q += 1
-            na = nn
+            na = _narrow(indptr, nbr, nlev, nodes[i], xs, ms, src, dst, na)
             src, dst = dst, src
         m = np.int32(-1)
         for t in range(na):

@@ -22,7 +22,7 @@ from pathlib import Path
 import numpy as np
 import pyarrow.parquet as pq
 
-from cliquewise.kernels.cliques import level_min, sweep_candidates
+from cliquewise.kernels.cliques import sweep_with_ranges
 from cliquewise.kernels.incidence import candidate_pairs, count_rows_in, scatter_rows_in, starts_from_counts
 from cliquewise.store import (
     NpyStream,
@@ -193,19 +193,21 @@ def enumerate_unit(graph_dir: str, lo: int, hi: int, max_cliques: int, max_secon
     deadline = t0 + max_seconds
     at_node, at_level = -1, -1
     n_edges = len(g["u"])
+    pair_dtype = np.int64 if n_edges >= 2**31 else np.int32
     for s, e in _blocks(Path(graph_dir), lo, hi, block):
         if trim and resident_bytes() > trim:
             drop_mapped_pages(g.values())
-        (ptr, nodes, lmax, st, wd), allow = _sweep_within(g, s, e, max_cliques - total, max_work - work, deadline)
+        (ptr, nodes, lmax, st, wd, lmin, pairs), allow = _sweep_within(g, s, e, max_cliques - total,
+                                                                       max_work - work, deadline)
         work += int(wd)
         if st != 0:
             status = int(st)
             where, at_node, at_level = _stop_point(g, s, e, max_cliques - total, allow, st, ptr, nodes, lmax)
             break
         k = len(ptr) - 1
-        if k:  # the level where each is still maximal, and its pairs' edge ids, while its rows are in cache
-            lmin_l.append(level_min(g["indptr"], g["nbr"], g["nlev"], ptr, nodes).astype(np.int32))
-            pairs_l.append(candidate_pairs(g["indptr"], g["nbr"], g["eid"], ptr, nodes, n_edges))
+        if k:  # with the level where each is still maximal, and its pairs' edge ids (worked out in the sweep)
+            lmin_l.append(lmin)
+            pairs_l.append(pairs.astype(pair_dtype))
             ptrs.append(ptr[1:] + offset)
             nodes_l.append(nodes)
             lmax_l.append(lmax)
@@ -223,7 +225,7 @@ def enumerate_unit(graph_dir: str, lo: int, hi: int, max_cliques: int, max_secon
     out.mkdir(parents=True, exist_ok=True)
     files = []
     arrays = (("ptr", np.int64, [np.zeros(1, np.int64)] + ptrs), ("nodes", np.int64, nodes_l),
-              ("lmax", np.int32, lmax_l), ("lmin", np.int32, lmin_l), ("pairs", np.int64 if n_edges >= 2**31 else np.int32, pairs_l))
+              ("lmax", np.int32, lmax_l), ("lmin", np.int32, lmin_l), ("pairs", pair_dtype, pairs_l))
     for name, dtype, pieces in arrays:
         rel = f"{tag}.{name}.npy"
         save_npy_parts(out / rel, pieces, dtype, sum(len(x) for x in pieces))
@@ -307,12 +309,12 @@ FIRST_WORK = 1 << 22
 
 
 def _sweep(g: dict, s: int, e: int, cliques_left: int, work_left: int):
-    return sweep_candidates(g["indptr"], g["nbr"], g["nlev"], g["eid"], g["u"], g["v"], g["lev"],
-                            s, e, np.int64(cliques_left), np.int64(work_left))
+    return sweep_with_ranges(g["indptr"], g["nbr"], g["nlev"], g["eid"], g["u"], g["v"], g["lev"],
+                             s, e, np.int64(cliques_left), np.int64(work_left))
 
 
 def _sweep_within(g: dict, s: int, e: int, cliques_left: int, work_left: int, deadline: float):
-    """:func:`sweep_candidates` on edges ``[s, e)`` under the budgets and a deadline.
+    """:func:`sweep_with_ranges` on edges ``[s, e)`` under the budgets and a deadline.
 
     The kernel has no clock, so the time budget acts through its work budget: the
     block is tried with a small allowance (:data:`FIRST_WORK`) and, when that runs
@@ -331,7 +333,7 @@ def _sweep_within(g: dict, s: int, e: int, cliques_left: int, work_left: int, de
         now = time.perf_counter()
         afford = int(res[4] / max(now - t, 1e-9) * (deadline - now))
         if afford <= allow:
-            return (res[0], res[1], res[2], 3, res[4]), allow
+            return (*res[:3], 3, *res[4:]), allow
         allow = min(int(work_left), max(2 * allow, afford))
 
 
