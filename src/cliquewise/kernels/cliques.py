@@ -499,6 +499,28 @@ def _narrow(indptr, nbr, nlev, c, xs, ms, src, dst, na):
 
 
 @numba.njit(nogil=True, cache=True)
+def _survivors_level(indptr, nbr, nlev, nodes, lo, hi, skip1, skip2, xs, ms, cap, na):
+    """Narrow the survivors ``xs[:na]`` by the row of every member of
+    ``nodes[lo:hi]`` other than ``skip1`` and ``skip2`` (whose rows made them);
+    returns one more than the largest surviving minimum level (0: none survives).
+    ``xs``/``ms`` hold two halves of ``cap`` entries, read one, write the other."""
+    src = np.int64(0)
+    dst = cap
+    for i in range(lo, hi):
+        if na == 0:
+            break
+        c = nodes[i]
+        if c == skip1 or c == skip2:
+            continue
+        na = _narrow(indptr, nbr, nlev, c, xs, ms, src, dst, na)
+        src, dst = dst, src
+    m = np.int32(-1)
+    for t in range(na):
+        m = max(m, ms[src + t])
+    return m + 1
+
+
+@numba.njit(nogil=True, cache=True)
 def _range_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, nodes, k, xs, ms, tpos,
                      pairs, w):
     """``level_min`` and the member pairs' edge ids of clique ``k``, listed from edge
@@ -527,19 +549,7 @@ def _range_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, nodes,
         xs[na] = x
         ms[na] = min(nlev[posA[t]], nlev[posB[t]])
         na += 1
-    src = np.int64(0)
-    dst = cap
-    for i in range(lo, hi):
-        if na == 0:
-            break
-        c = nodes[i]
-        if c == a or c == b:
-            continue
-        na = _narrow(indptr, nbr, nlev, c, xs, ms, src, dst, na)
-        src, dst = dst, src
-    mx = np.int32(-1)
-    for t in range(na):
-        mx = max(mx, ms[src + t])
+    lmin = _survivors_level(indptr, nbr, nlev, nodes, lo, hi, a, b, xs, ms, cap, na)
     for i in range(lo, hi - 1):
         ci = nodes[i]
         for j in range(i + 1, hi):
@@ -555,7 +565,7 @@ def _range_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, nodes,
                 pe = eid[find_edge(indptr, nbr, ci, cj)]
             pairs[w] = pe
             w += 1
-    return mx + 1, w
+    return lmin, w
 
 
 @numba.njit(nogil=True, cache=True)
@@ -599,19 +609,7 @@ def _level_min_kernel(indptr, nbr, nlev, ptr, nodes):
             ms[na] = nlev[q]
             na += 1
         # keep those in the row of every other member, taking the min level
-        src = np.int64(0)
-        dst = cap
-        for i in range(lo, hi):
-            if na == 0:
-                break
-            if i == i0:
-                continue
-            na = _narrow(indptr, nbr, nlev, nodes[i], xs, ms, src, dst, na)
-            src, dst = dst, src
-        m = np.int32(-1)
-        for t in range(na):
-            m = max(m, ms[src + t])
-        out[k] = m + 1
+        out[k] = _survivors_level(indptr, nbr, nlev, nodes, lo, hi, np.int64(c0), np.int64(-1), xs, ms, cap, na)
     return out
 
 
