@@ -466,3 +466,31 @@ def test_sweep_with_ranges_on_shipped_graphs(make, small, split):
     n, u, v, w, lev = from_networkx(make())
     order = np.argsort(-lev, kind="stable")  # as the stage sweeps: high levels first
     _check_ranges(n, u[order], v[order], lev[order], small=small, split=split)
+
+
+@pytest.mark.parametrize("small, split", [(64, 1024), (0, 0)])
+def test_sweep_with_ranges_where_its_buffers_grow(small, split):
+    # A hub joined to everyone and a planted 80-clique in a networkx random graph
+    # (gnp_random_graph): common neighbourhoods of hundreds of vertices, thousands
+    # of cliques per call and long pair lists, so every buffer of the sweep grows
+    # and the output is redone when full. References: the separate passes
+    # level_min and candidate_pairs, each checked against a plain-Python twin above
+    # and in test_kernels_incidence.py.
+    from cliquewise.kernels.incidence import candidate_pairs
+
+    g = nx.gnp_random_graph(300, 0.12, seed=4)
+    g.add_edges_from((0, x) for x in range(1, 300))
+    g.add_edges_from((a, b) for a in range(200, 280) for b in range(a + 1, 280))
+    rng = np.random.default_rng(4)
+    e = sorted(g.edges())
+    u = np.array([a for a, _ in e], np.int64)
+    v = np.array([b for _, b in e], np.int64)
+    lev = rng.integers(0, 4, len(e)).astype(np.int32)
+    order = np.argsort(-lev, kind="stable")
+    u, v, lev = u[order], v[order], lev[order]
+    csr = csr_from_edges(300, u, v, lev)
+    ptr, nodes, lmax, status, _, lmin, pairs = sweep_with_ranges(*csr, u, v, lev, _small=small, _split=split)
+    assert status == 0
+    assert len(ptr) - 1 > 5000 and np.diff(ptr).max() >= 80 and len(pairs) > 100_000
+    np.testing.assert_array_equal(lmin, level_min(csr[0], csr[1], csr[2], ptr, nodes))
+    np.testing.assert_array_equal(pairs, candidate_pairs(csr[0], csr[1], csr[3], ptr, nodes, len(u), _wide=True))

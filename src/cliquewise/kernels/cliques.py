@@ -363,7 +363,7 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
     K = cnt[0]
     return (ptr[: K + 1].copy(), nodes[: cnt[1]].copy(), lvl[:K].copy(),
             np.int64(cnt[3]), np.int64(cnt[2]), lmin[:K].copy() if ranges else lmin,
-            pairs[:n_pairs].copy())
+            pairs[:n_pairs])
 
 
 def sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
@@ -562,7 +562,10 @@ def _range_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, nodes,
             elif cj == a or cj == b:
                 pe = eid[posA[tpos[i - lo]]] if cj == a else eid[posB[tpos[i - lo]]]
             else:
-                pe = eid[find_edge(indptr, nbr, ci, cj)]
+                q = find_edge(indptr, nbr, ci, cj)
+                if q < 0:
+                    raise ValueError("sweep: a listed clique has a member pair that is not an edge")
+                pe = eid[q]
             pairs[w] = pe
             w += 1
     return lmin, w

@@ -182,7 +182,8 @@ def number_candidates(part_list: list[dict], out_dir: str, n_cand: int, budget: 
     Candidates no tree uses (none in practice: every candidate's pairs are edges)
     come last, in id order. The ids are written into the mapped file; with
     ``budget`` (bytes) its pages are dropped whenever the resident set passes it,
-    so the driver holds a block of a tree's ids, not the whole numbering.
+    checked every :data:`NUMBER_BLOCK_LIMITED` ids (each may touch a new page), so
+    the driver holds about the budget, not the whole numbering.
     """
     out = Path(out_dir)
     new_id = np.lib.format.open_memmap(out / "new_id.npy", mode="w+", dtype=np.int64, shape=(n_cand,))
@@ -195,8 +196,9 @@ def number_candidates(part_list: list[dict], out_dir: str, n_cand: int, budget: 
     for part in part_list:
         first.append(nxt)
         g = load_npy(_files(out, part["index"], "g")[0], mmap=True)
-        for lo in range(0, len(g), NUMBER_BLOCK):
-            nxt = first_seen_order(np.asarray(g[lo:lo + NUMBER_BLOCK]), ids, nxt)
+        step = NUMBER_BLOCK_LIMITED if budget else NUMBER_BLOCK  # a block's writes land all over the file
+        for lo in range(0, len(g), step):
+            nxt = first_seen_order(np.asarray(g[lo:lo + step]), ids, nxt)
             if budget and resident_bytes() > budget:
                 drop_mapped_pages((new_id, g))
         drop_mapped_pages((g,))
@@ -213,6 +215,7 @@ def number_candidates(part_list: list[dict], out_dir: str, n_cand: int, budget: 
 
 
 NUMBER_BLOCK = 1 << 20
+NUMBER_BLOCK_LIMITED = 1 << 14  # at most 64 MB of pages first touched between two checks
 
 
 def localize_part(part: dict, out_dir: str, new_id, own_lo: int, own_end: int) -> dict:

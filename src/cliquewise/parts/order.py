@@ -101,9 +101,10 @@ def _bits(key: np.ndarray) -> np.ndarray:
 def descending_order(key_path, out_path, rows: int, block: int = BLOCK) -> int:
     """Write to ``out_path`` (int64 ``.npy``) the positions of the keys in
     ``key_path`` (float64 ``.npy``, finite, ``>= 0``), largest key first, ties by
-    position: ``np.argsort(-key, kind="stable")``, with at most about ``rows``
-    positions sorted in memory at a time. Returns the number of passes over the
-    key file (a measure of the work)."""
+    position: ``np.argsort(-key, kind="stable")``, with at most ``rows``
+    positions sorted in memory at a time (about 24 bytes each, plus numpy's sort
+    buffer). Every range costs one pass over the key file, so the passes grow as
+    ``n / rows``. Returns the number of passes (a measure of the work)."""
     n = 0
     lo_bits, hi_bits = None, None
     for _, k in npy_blocks(key_path, block):
@@ -145,10 +146,18 @@ class _Sorter:
                 out.write(pos)
             return
         if count <= self.rows:
-            got = list(self._select(lo, hi))
-            pos = np.concatenate([p for p, _ in got]) if got else np.zeros(0, np.int64)
-            u = np.concatenate([b for _, b in got]) if got else np.zeros(0, np.uint64)
-            out.write(pos[np.argsort(~u, kind="stable")])  # ~u: descending, ties keep position order
+            pos = np.empty(count, np.int64)
+            u = np.empty(count, np.uint64)
+            at = 0
+            for p, b in self._select(lo, hi):
+                pos[at:at + len(p)] = p
+                u[at:at + len(p)] = b
+                at += len(p)
+            np.invert(u, out=u)  # ascending ~u is descending u; a stable sort keeps ties in position order
+            order = np.argsort(u, kind="stable")
+            del u
+            for i in range(0, count, self.block):
+                out.write(pos[order[i:i + self.block]])
             return
         shift = max(0, (hi - lo).bit_length() - BITS)
         counts = np.zeros(((hi - lo) >> shift) + 1, np.int64)

@@ -53,7 +53,7 @@ def _write_cliques(path, order, ptr, mu, expected, total, levels, lmin, lmax) ->
     n = len(order)
     with pq.ParquetWriter(path, schema, compression="zstd") as writer:
         for i in range(0, max(n, 1), CLIQUE_ROWS_PER_GROUP):
-            o = np.asarray(order[i:i + CLIQUE_ROWS_PER_GROUP])
+            o = np.array(order[i:i + CLIQUE_ROWS_PER_GROUP])  # a copy: the mapped pages go next
             drop_mapped_pages((order,))
             start, end, m, e, lo, hi = gather_mapped_many((ptr[:-1], ptr[1:], mu, expected, lmin, lmax), o)
             writer.write_table(pa.table({
@@ -81,7 +81,7 @@ def _write_members(path, ptr, members, order, labels: pa.Array) -> int:
     with pq.ParquetWriter(path, schema, compression="zstd") as writer:
         i = 0
         while i < len(order):
-            o = np.asarray(order[i:i + MEMBER_ROWS_PER_GROUP])
+            o = np.array(order[i:i + MEMBER_ROWS_PER_GROUP])  # a copy: the mapped pages go next
             drop_mapped_pages((order,))
             starts, ends = gather_mapped_many((ptr[:-1], ptr[1:]), o)
             sz = (ends - starts).astype(np.int64)  # at least one row each
@@ -127,7 +127,8 @@ SORT_SHARE = 256  # under a memory limit, sort at most (task memory / SORT_SHARE
 
 def sort_rows(ctx: StageContext, n_cand: int) -> int:
     """Candidates sorted in memory at once: all of them without a memory limit; under
-    one, about 40 bytes each in a 256th of a task's memory (the driver's share)."""
+    one, a 256th of a task's memory in candidates (about 24 bytes each, plus the
+    sort's buffer: well under a tenth of a task's memory)."""
     budget = ctx.engine.task_memory()
     return max(1 << 16, budget // SORT_SHARE) if budget else max(1, n_cand)
 
