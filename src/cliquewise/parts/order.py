@@ -13,14 +13,15 @@ an array over all of them. The two orders the pipeline needs are built here from
   the same as ``np.argsort(-key, kind="stable")`` for keys ``>= 0``. An external
   distribution sort: a histogram of the keys' bit patterns (for non-negative
   floats, the order of the bits is the order of the values) cuts the key range
-  into ranges of at most ``rows`` candidates, refining any range that is still
-  too large; each range is then selected in one pass and sorted in memory. A run
-  of equal keys larger than ``rows`` (the pruned candidates, all 0) is written in
-  id order without sorting.
+  into ranges of at most ``rows`` candidates, a second pass spreads the keys
+  into scratch files by range, and each range is then sorted in memory (one too
+  large is split again the same way). A run of equal keys larger than ``rows``
+  (the pruned candidates, all 0) is written in id order without sorting.
 """
 
 from __future__ import annotations
 
+import shutil
 from pathlib import Path
 
 import numba
@@ -103,8 +104,17 @@ def descending_order(key_path, out_path, rows: int, block: int = BLOCK) -> int:
     ``key_path`` (float64 ``.npy``, finite, ``>= 0``), largest key first, ties by
     position: ``np.argsort(-key, kind="stable")``, with at most ``rows``
     positions sorted in memory at a time (about 24 bytes each, plus numpy's sort
-    buffer). Every range costs one pass over the key file, so the passes grow as
-    ``n / rows``. Returns the number of passes (a measure of the work)."""
+    buffer).
+
+    When the keys do not fit in ``rows``, a histogram pass cuts their range into
+    ranges of at most ``rows`` (a bin larger than that is a range of its own), and
+    a second pass appends each key's position and bits to its range's scratch
+    files (next to ``out_path``, removed at the end); the ranges are then sorted
+    one at a time, largest keys first, a too-large one by the same two passes over
+    its own files. So the work is a few passes over the data, whatever ``rows``.
+    Returns the keys read, in passes over the whole data (the first, checking
+    pass included).
+    """
     n = 0
     lo_bits, hi_bits = None, None
     for _, k in npy_blocks(key_path, block):
@@ -116,40 +126,84 @@ def descending_order(key_path, out_path, rows: int, block: int = BLOCK) -> int:
         lo_bits = int(u.min()) if lo_bits is None else min(lo_bits, int(u.min()))
         hi_bits = int(u.max()) if hi_bits is None else max(hi_bits, int(u.max()))
         n += len(k)
-    sorter = _Sorter(key_path, max(1, int(rows)), block)
-    with NpyStream(out_path, np.int64, n) as out:
-        if n:
-            sorter.emit(lo_bits, hi_bits, n, out)
-    return sorter.passes + 1
+    scratch = Path(out_path).parent / (Path(out_path).name + ".ranges")
+    sorter = _Sorter(max(1, int(rows)), block, scratch)
+    try:
+        with NpyStream(out_path, np.int64, n) as out:
+            if n:
+                sorter.emit(_KeyFile(key_path, block), lo_bits, hi_bits, n, out)
+    finally:
+        shutil.rmtree(scratch, ignore_errors=True)
+    return 1.0 + sorter.read / max(n, 1)
+
+
+class _KeyFile:
+    """The keys to order: ``(positions, bits)`` a block at a time from the key file."""
+
+    def __init__(self, path, block: int):
+        self.path = path
+        self.block = block
+
+    def blocks(self):
+        for start, k in npy_blocks(self.path, self.block):
+            yield np.arange(start, start + len(k), dtype=np.int64), _bits(k)
+
+
+class _Range:
+    """Part of the keys, in two scratch files (positions, bits) in position order."""
+
+    def __init__(self, folder: Path, name: str, block: int):
+        self.pos = folder / f"{name}.pos"
+        self.bits = folder / f"{name}.bits"
+        self.block = block
+
+    def append(self, pos, bits) -> None:
+        for path, arr in ((self.pos, pos), (self.bits, bits)):
+            with open(path, "ab") as fh:
+                fh.write(memoryview(np.ascontiguousarray(arr)).cast("B"))
+
+    def blocks(self):
+        if not self.pos.exists():
+            return
+        with open(self.pos, "rb") as fp, open(self.bits, "rb") as fb:
+            while True:
+                p = np.fromfile(fp, np.int64, self.block)
+                if len(p) == 0:
+                    return
+                yield p, np.fromfile(fb, np.uint64, len(p))
+
+    def remove(self) -> None:
+        self.pos.unlink(missing_ok=True)
+        self.bits.unlink(missing_ok=True)
 
 
 class _Sorter:
-    def __init__(self, key_path, rows: int, block: int):
-        self.key_path = key_path
+    def __init__(self, rows: int, block: int, scratch: Path):
         self.rows = rows
         self.block = block
-        self.passes = 0
+        self.scratch = scratch
+        self.read = 0
+        self.names = 0
 
-    def _select(self, lo: int, hi: int):
-        """Yield, block by block, the positions whose key bits lie in ``[lo, hi]`` and the bits."""
-        self.passes += 1
+    def _select(self, source, lo: int, hi: int):
+        """Yield, block by block, the positions of ``source`` whose key bits lie in ``[lo, hi]``, and the bits."""
         ulo, uhi = np.uint64(lo), np.uint64(hi)
-        for start, k in npy_blocks(self.key_path, self.block):
-            u = _bits(k)
-            pos = np.flatnonzero((u >= ulo) & (u <= uhi))
-            yield pos + start, u[pos]
+        for pos, u in source.blocks():
+            self.read += len(pos)
+            keep = (u >= ulo) & (u <= uhi)
+            yield pos[keep], u[keep]
 
-    def emit(self, lo: int, hi: int, count: int, out: NpyStream) -> None:
-        """Write the positions with key bits in ``[lo, hi]`` (``count`` of them), largest first."""
-        if lo == hi:  # one key: ties in position order, as selected
-            for pos, _ in self._select(lo, hi):
+    def emit(self, source, lo: int, hi: int, count: int, out: NpyStream) -> None:
+        """Write the positions of ``source`` with key bits in ``[lo, hi]`` (``count``), largest first."""
+        if lo == hi:  # one key: ties in position order, as they come
+            for pos, _ in self._select(source, lo, hi):
                 out.write(pos)
             return
         if count <= self.rows:
             pos = np.empty(count, np.int64)
             u = np.empty(count, np.uint64)
             at = 0
-            for p, b in self._select(lo, hi):
+            for p, b in self._select(source, lo, hi):
                 pos[at:at + len(p)] = p
                 u[at:at + len(p)] = b
                 at += len(p)
@@ -162,10 +216,11 @@ class _Sorter:
         shift = max(0, (hi - lo).bit_length() - BITS)
         counts = np.zeros(((hi - lo) >> shift) + 1, np.int64)
         ulo = np.uint64(lo)
-        for _, u in self._select(lo, hi):
+        for _, u in self._select(source, lo, hi):
             counts += np.bincount(((u - ulo) >> np.uint64(shift)).astype(np.int64), minlength=len(counts))
+        ranges = []  # (lo, hi, count), largest keys first, each of at most rows keys or a single bin
         b = len(counts) - 1
-        while b >= 0:  # bins from the largest keys down, grouped into ranges of at most rows
+        while b >= 0:
             if counts[b] == 0:
                 b -= 1
                 continue
@@ -173,7 +228,24 @@ class _Sorter:
             while a >= 0 and total + counts[a] <= self.rows:
                 total += int(counts[a])
                 a -= 1
-            if a == b:  # one bin too large on its own: refine it
+            if a == b:  # one bin too large on its own: a range to refine
                 a, total = b - 1, int(counts[b])
-            self.emit(lo + ((a + 1) << shift), min(hi, lo + ((b + 1) << shift) - 1), total, out)
+            ranges.append((lo + ((a + 1) << shift), min(hi, lo + ((b + 1) << shift) - 1), total))
             b = a
+        # one pass puts every key into its range's files, in position order
+        self.scratch.mkdir(parents=True, exist_ok=True)
+        files = []
+        for _ in ranges:
+            files.append(_Range(self.scratch, f"r{self.names:06d}", self.block))
+            self.names += 1
+        starts = np.array([r[0] for r in ranges][::-1], np.uint64)  # ascending lower bounds
+        for pos, u in self._select(source, lo, hi):
+            which = len(ranges) - np.searchsorted(starts, u, side="right")  # index into ranges
+            order = np.argsort(which, kind="stable")
+            cuts = np.searchsorted(which[order], np.arange(len(ranges) + 1))
+            for i in np.flatnonzero(np.diff(cuts)):
+                o = order[cuts[i]:cuts[i + 1]]
+                files[i].append(pos[o], u[o])
+        for (r_lo, r_hi, total), f in zip(ranges, files):
+            self.emit(f, r_lo, r_hi, total, out)
+            f.remove()
