@@ -132,26 +132,3 @@ def test_results_sorted_a_few_rows_at_a_time_equal_the_results_sorted_at_once(tm
         pd.testing.assert_frame_equal(pd.read_parquet(tmp_path / "small" / "results" / f"{table}.parquet"),
                                       pd.read_parquet(tmp_path / "once" / "results" / f"{table}.parquet"),
                                       check_exact=True)
-
-
-def test_first_use_numbering_in_small_blocks_under_a_budget_equals_the_unbounded_one(tmp_path, monkeypatch):
-    # prepare_trees with a 1-byte budget (pages dropped after every block of 3 ids)
-    # and without one give the same parts and the same numbering (the numbering's
-    # first-use rule is checked in test_kernels_prefixtree.py)
-    import cliquewise
-    from cliquewise.engine import Engine, EngineSettings
-    from cliquewise.parts import fitting
-
-    cliquewise.decompose(graph_frame(nx.les_miserables_graph()), run_dir=tmp_path / "run", progress=False)
-    enum_dir = tmp_path / "run" / "enumerate"
-    eng = Engine(EngineSettings(progress=False))
-    try:
-        free = fitting.prepare_trees(eng, str(enum_dir), str(tmp_path / "free"), 50)
-        monkeypatch.setattr(fitting, "NUMBER_BLOCK_LIMITED", 3)
-        tight = fitting.prepare_trees(eng, str(enum_dir), str(tmp_path / "tight"), 50, budget=1)
-    finally:
-        eng.close()
-    assert free == tight and len(free) > 1
-    a, b = load_npy(tmp_path / "free" / "new_id.npy"), load_npy(tmp_path / "tight" / "new_id.npy")
-    np.testing.assert_array_equal(a, b)
-    assert sorted(a.tolist()) == list(range(len(a)))  # a numbering: every id once

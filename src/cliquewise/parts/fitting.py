@@ -20,6 +20,7 @@ id range plus the offset where it starts.
 
 from __future__ import annotations
 
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -290,6 +291,7 @@ def _localize_item(item, out_dir):
 
 
 _TREE_CACHE: dict = {}
+_TREE_LOCK = threading.Lock()
 _TREE_CACHE_LIMIT = 64
 
 
@@ -304,19 +306,21 @@ def _load_tree(tree_dir: str, part: dict, cache_bytes: int | None = None):
     """
     files = _files(Path(tree_dir), part["index"]) + [Path(tree_dir) / f"p{part['index']:05d}.strag.npy"]
     key = (str(tree_dir), part["index"], tuple(f.stat().st_mtime_ns for f in files))
-    hit = _TREE_CACHE.get(key)
+    with _TREE_LOCK:
+        hit = _TREE_CACHE.get(key)
     if hit is None:
-        if len(_TREE_CACHE) >= _TREE_CACHE_LIMIT:
-            _TREE_CACHE.clear()
         hit = tuple(load_npy(f) for f in files)
         check_tree(*hit[:4], part["width"])
         strag = hit[4]
         if len(strag) != part["width"] - (part["cand_hi"] - part["cand_lo"] + 1) or (
                 len(strag) and (strag.min() < 0 or strag.max() >= part["cand_lo"])):
             raise ValueError(f"{files[4]}: stragglers do not match the part")
-        held = sum(a.nbytes for v in _TREE_CACHE.values() for a in v)
-        if cache_bytes is None or held + sum(a.nbytes for a in hit) <= cache_bytes:
-            _TREE_CACHE[key] = hit
+        with _TREE_LOCK:  # the engine's threads load parts side by side
+            if len(_TREE_CACHE) >= _TREE_CACHE_LIMIT:
+                _TREE_CACHE.clear()
+            held = sum(a.nbytes for v in _TREE_CACHE.values() for a in v)
+            if cache_bytes is None or held + sum(a.nbytes for a in hit) <= cache_bytes:
+                _TREE_CACHE[key] = hit
     return hit
 
 
@@ -331,7 +335,8 @@ def _local(part: dict, strag: np.ndarray, x: np.ndarray) -> np.ndarray:
 
 def clear_cache() -> None:
     """Forget cached trees (the fit stage calls this when it ends)."""
-    _TREE_CACHE.clear()
+    with _TREE_LOCK:
+        _TREE_CACHE.clear()
 
 
 def em_part(part: dict, tree_dir: str, mu, want_loglik: bool = True, out=None,
