@@ -30,6 +30,7 @@ import numpy as np
 from cliquewise.store import NpyStream, drop_mapped_pages, npy_blocks
 
 BLOCK = 1 << 22  # candidates per block read
+SORT_BLOCK = 1 << 20  # keys per block read by descending_order (each block's temporaries: about 60 bytes a key)
 BITS = 16  # histogram bins per refinement: 2**BITS
 
 
@@ -99,7 +100,7 @@ def _bits(key: np.ndarray) -> np.ndarray:
     return k.view(np.uint64)
 
 
-def descending_order(key_path, out_path, rows: int, block: int = BLOCK) -> int:
+def descending_order(key_path, out_path, rows: int, block: int = SORT_BLOCK) -> int:
     """Write to ``out_path`` (int64 ``.npy``) the positions of the keys in
     ``key_path`` (float64 ``.npy``, finite, ``>= 0``), largest key first, ties by
     position: ``np.argsort(-key, kind="stable")``, with at most ``rows``
