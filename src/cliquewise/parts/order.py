@@ -35,7 +35,7 @@ BITS = 16  # histogram bins per refinement: 2**BITS
 
 
 # -- the fit's list order -------------------------------------------------------
-def _sizes(cand_ptr_path, block: int):
+def candidate_sizes(cand_ptr_path, block: int = BLOCK):
     """Yield ``(start, sizes)`` of consecutive candidates from ``cand_ptr.npy``."""
     last = None
     for lo, ptr in npy_blocks(cand_ptr_path, block):
@@ -57,7 +57,7 @@ def rank_by_size(cand_ptr_path, rank_path, by_rank_path, block: int = BLOCK) -> 
     """
     counts = np.zeros(2, np.int64)
     n = 0
-    for _, s in _sizes(cand_ptr_path, block):
+    for _, s in candidate_sizes(cand_ptr_path, block):
         key = np.maximum(s, 1)
         top = int(key.max(initial=0))
         if top >= len(counts):
@@ -71,7 +71,7 @@ def rank_by_size(cand_ptr_path, rank_path, by_rank_path, block: int = BLOCK) -> 
     by_rank = np.lib.format.open_memmap(Path(by_rank_path), mode="w+", dtype=dtype, shape=(n,))
     try:
         with NpyStream(rank_path, dtype, n) as f_rank:
-            for lo, s in _sizes(cand_ptr_path, block):
+            for lo, s in candidate_sizes(cand_ptr_path, block):
                 rank = np.empty(len(s), dtype)
                 _place(np.maximum(s, 1), lo, start, rank, np.asarray(by_rank))
                 f_rank.write(rank)

@@ -24,8 +24,9 @@ import numpy as np
 import pyarrow.parquet as pq
 
 from cliquewise.parts import candidates as parts
+from cliquewise.parts.order import candidate_sizes
 from cliquewise.stage import InputError, StageContext
-from cliquewise.store import RunStore, load_npy, npy_blocks
+from cliquewise.store import RunStore, load_npy
 
 NAME = "enumerate"
 UPSTREAM = ["ingest", "split"]
@@ -107,11 +108,8 @@ def run(ctx: StageContext) -> dict:
     shutil.move(str(gdir / "weight.npy"), str(work / "weight.npy"))
     shutil.rmtree(gdir, ignore_errors=True)
     hist = np.zeros(cinfo["largest_candidate"] + 1, np.int64)
-    last = None
-    for _, ptr in npy_blocks(work / "cand_ptr.npy", parts.READ_BLOCK):
-        sizes = np.diff(ptr, prepend=ptr[:1] if last is None else last)
-        hist += np.bincount(sizes[1:] if last is None else sizes, minlength=len(hist))
-        last = ptr[-1:]
+    for _, sizes in candidate_sizes(work / "cand_ptr.npy", parts.READ_BLOCK):
+        hist += np.bincount(sizes, minlength=len(hist))
     return {
         "edges": n_edges,
         "levels": info["levels"],

@@ -29,6 +29,7 @@ import numpy as np
 
 from cliquewise.kernels.em import fit_em, loglik_constant
 from cliquewise.parts import fitting as parts
+from cliquewise.parts.order import candidate_sizes
 from cliquewise.parts.vectors import CHUNK, Vectors, release
 from cliquewise.stage import StageContext
 from cliquewise.store import RunStore, load_npy, npy_blocks, read_json, scatter_mapped, write_json_atomic
@@ -236,18 +237,14 @@ def _pairs_in_tree_order(vs: Vectors, cand_ptr_path, new_id_path):
     """``P`` in the trees' numbering: position ``new_id[k]`` holds the pairs of candidate ``k``."""
     P = vs.empty()
     new_id = load_npy(new_id_path, mmap=True)
-    last = None
-    for lo, ptr in npy_blocks(cand_ptr_path, CHUNK):
-        sizes = np.diff(ptr, prepend=ptr[:1] if last is None else last).astype(np.float64)
-        sizes = sizes[1:] if last is None else sizes
-        start = lo - 1 if last is not None else lo
+    for start, s in candidate_sizes(cand_ptr_path, CHUNK):
+        sizes = s.astype(np.float64)
         dest = np.asarray(new_id[start:start + len(sizes)])
         if vs.in_files:  # a slice of the file at a time, not every page of it at once
             scatter_mapped(P, dest, sizes * (sizes - 1.0) / 2.0)
         else:
             P[dest] = sizes * (sizes - 1.0) / 2.0
         release(P, new_id)
-        last = ptr[-1:]
     return P
 
 
