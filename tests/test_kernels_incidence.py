@@ -8,7 +8,16 @@ from hypothesis import strategies as st
 
 from cliquewise.kernels.cliques import maximal_cliques, sweep_candidates
 from cliquewise.kernels.graph import csr_from_edges
-from cliquewise.kernels.incidence import incidence, incidence_reference
+from cliquewise.kernels.incidence import (
+    count_buckets,
+    count_rows,
+    count_rows_in,
+    incidence,
+    incidence_reference,
+    scatter_rows,
+    scatter_rows_in,
+    starts_from_counts,
+)
 
 
 def from_networkx(g):
@@ -136,3 +145,35 @@ def test_incidence_with_a_hub_member_and_read_only_arrays(wide):
     ref_ptr, ref_cand = incidence_reference(u, v, ptr, nodes)
     np.testing.assert_array_equal(inc_ptr, ref_ptr)
     np.testing.assert_array_equal(inc_cand, ref_cand)
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.integers(1, 6), min_size=0, max_size=30), st.integers(0, 4), st.integers(1, 5),
+       st.integers(0, 2**31 - 1))
+def test_incidence_by_edge_ranges_equals_the_whole_counting_sort(sizes, shift, n_ranges, seed):
+    """count_buckets against numpy's bincount (numpy as reference), and the rows of
+    edge ranges (count_rows_in, scatter_rows_in) against the counting sort over all
+    edges, on random candidate sizes and edge ids."""
+    rng = np.random.default_rng(seed)
+    ptr = np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64)
+    n_pairs = int(sum(s * (s - 1) // 2 for s in sizes))
+    n_edges = 40
+    pair_e = rng.integers(0, n_edges, n_pairs).astype(np.int32)
+    per_bucket = np.zeros(-(-n_edges // (1 << shift)), np.int64)
+    count_buckets(pair_e, np.int64(shift), per_bucket)
+    np.testing.assert_array_equal(per_bucket, np.bincount(pair_e >> shift, minlength=len(per_bucket)))
+    cnt = np.zeros(n_edges + 2, np.int64)
+    count_rows(pair_e, cnt)
+    starts_from_counts(cnt, np.int64(n_edges))
+    want = np.empty(n_pairs, np.int64)
+    scatter_rows(ptr, pair_e, np.int64(5), cnt, want)
+    bounds = np.linspace(0, n_edges, n_ranges + 1).astype(np.int64)
+    got = []
+    for lo, hi in zip(bounds[:-1], bounds[1:]):
+        c = np.zeros(hi - lo + 2, np.int64)
+        count_rows_in(pair_e, np.int64(lo), np.int64(hi), c)
+        starts_from_counts(c, np.int64(hi - lo))
+        part = np.empty(int(c[hi - lo + 1]), np.int64)
+        scatter_rows_in(ptr, pair_e, np.int64(5), np.int64(lo), np.int64(hi), c, part)
+        got.append(part)
+    np.testing.assert_array_equal(np.concatenate(got), want)

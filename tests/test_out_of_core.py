@@ -64,13 +64,19 @@ def weighted_graphs(draw):
 
 
 @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
-@given(g=weighted_graphs(), budget=st.sampled_from([None, 16, 100, 1000]), n_files=st.integers(1, 3))
-def test_csr_built_in_row_ranges_equals_scipy(tmp_path_factory, monkeypatch, g, budget, n_files):
+@given(g=weighted_graphs(), budget=st.sampled_from([None, 16, 100, 1000]), n_files=st.integers(1, 3),
+       pieces=st.integers(1, 4))
+def test_csr_built_in_row_ranges_equals_scipy(tmp_path_factory, monkeypatch, g, budget, n_files, pieces):
     n, u, v, w = g
     monkeypatch.setattr(parts, "READ_BLOCK", 7)  # several blocks per file
     root = tmp_path_factory.mktemp("csr")
     files = write_edge_files(root / "edges", u, v, w, n_files)
-    info = parts.build_graph(files, n, "all", root / "graph", budget)
+    # as the stage does it: row ranges cut for `pieces` threads, filled in any order
+    info = parts.prepare_graph(files, n, "all", root / "graph", budget, pieces)
+    for rows in reversed(info["ranges"]):
+        parts.csr_range(root / "graph", *rows)
+    if pieces > 1:  # an equal share is less than all entries, so the rows are cut
+        assert info["row_ranges"] > 1
     got = parts.load_graph(root / "graph")
     levels = np.unique(w)
     lev = np.searchsorted(levels, w, side="right") - 1
@@ -140,13 +146,15 @@ def test_incidence_in_edge_ranges_is_every_pair_of_every_candidate(tmp_path, mon
     files = write_edge_files(tmp_path / "edges", u, v, w, 2)
     gdir = tmp_path / "graph"
     parts.build_graph(files, 60, "all", gdir)
+    monkeypatch.setattr(parts, "INC_BUCKET", 16)
     units = parts.plan_units(len(u), 97)
     tags = [f"e{lo:012d}" for lo, _ in units]
     for (lo, hi), tag in zip(units, tags):
         res = parts.enumerate_unit(str(gdir), lo, hi, 10**9, 1e9, tmp_path / "cl", tag, trim=1)  # trim every block
         assert res["status"] == 0
-    monkeypatch.setattr(parts, "INC_BUCKET", 16)
-    info = parts.collect_units(tmp_path / "cl", tags, tmp_path / "out", len(u), "all", budget)
+    # no budget: cut into 3 ranges of about equal incidences, as the stage does for its threads
+    info = parts.collect_units(tmp_path / "cl", tags, tmp_path / "out", len(u), "all", budget, pieces=3)
+    assert info["incidence_ranges"] >= 3
     if budget == 40:
         assert info["incidence_ranges"] > 5
     inc_ptr, inc_cand = load_npy(tmp_path / "out" / "inc_ptr.npy"), load_npy(tmp_path / "out" / "inc_cand.npy")

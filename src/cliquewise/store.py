@@ -171,6 +171,41 @@ class NpyStream:
             self._fh = None
 
 
+def create_npy(path: Path, dtype, length: int) -> None:
+    """An empty 1-d ``.npy`` file of ``length`` items (zeros; sparse on disk) that
+    :func:`write_npy_at` fills piece by piece, possibly from several processes.
+
+    >>> import tempfile, numpy as np
+    >>> path = Path(tempfile.mkdtemp()) / "a.npy"
+    >>> create_npy(path, np.int64, 5)
+    >>> write_npy_at(path, 3, np.array([7, 8])); write_npy_at(path, 0, np.array([1]))
+    >>> np.load(path).tolist()
+    [1, 0, 0, 7, 8]
+    """
+    dtype = np.dtype(dtype)
+    if dtype == object:
+        raise TypeError("object arrays are not stored (they would need pickle)")
+    with open(path, "wb") as fh:
+        np.lib.format.write_array_header_1_0(
+            fh, {"descr": np.lib.format.dtype_to_descr(dtype), "fortran_order": False, "shape": (int(length),)})
+        fh.truncate(fh.tell() + int(length) * dtype.itemsize)
+
+
+def write_npy_at(path: Path, start: int, arr) -> None:
+    """Write ``arr`` into the 1-d ``.npy`` file at ``path`` from item ``start`` on
+    (the file's dtype and length stay as its header says)."""
+    with open(path, "r+b") as fh:
+        version = np.lib.format.read_magic(fh)
+        read_header = (np.lib.format.read_array_header_1_0 if version == (1, 0)
+                       else np.lib.format.read_array_header_2_0)
+        shape, _, dtype = read_header(fh)
+        a = np.ascontiguousarray(arr, dtype)
+        if len(shape) != 1 or dtype.hasobject or not 0 <= int(start) <= shape[0] - len(a):
+            raise StoreError(f"{path}: cannot write {len(a)} items at {start} (shape {shape}, {dtype})")
+        fh.seek(fh.tell() + int(start) * dtype.itemsize)
+        fh.write(memoryview(a).cast("B"))
+
+
 def save_npy_parts(path: Path, parts: Iterable[np.ndarray], dtype, length: int) -> None:
     """Save the concatenation of ``parts`` as one ``.npy`` of ``length`` items
     without building it in memory: the header first, then each part's bytes.

@@ -10,7 +10,8 @@ One pass over the candidates (:func:`pair_edges`) looks every pair up once and
 writes its edge id into a pair buffer, in candidate order; a counting sort by edge
 (:func:`count_rows`, :func:`starts_from_counts`, :func:`scatter_rows`) then
 scatters the candidate ids into their rows (``*_in``: the rows of one range of
-edges, for an incidence built a range at a time). The enumerate stage runs the lookups
+edges, for an incidence built a range at a time, ranges side by side; the ranges
+are cut from :func:`count_buckets`). The enumerate stage runs the lookups
 inside its work units, right after the search that found the candidates (their
 rows are still in cache), and the counting sort once over all units. The scatter
 visits the pairs in candidate order, so each row comes out ascending without a
@@ -27,7 +28,7 @@ import numpy as np
 
 from cliquewise.kernels.graph import bit_length, prefetch_member_rows
 
-__all__ = ["candidate_pairs", "count_rows", "count_rows_in", "incidence", "incidence_reference", "pair_edges",
+__all__ = ["candidate_pairs", "count_buckets", "count_rows", "count_rows_in", "incidence", "incidence_reference", "pair_edges",
            "scatter_rows", "scatter_rows_in", "starts_from_counts"]
 
 
@@ -102,6 +103,13 @@ def scatter_rows(ptr, pair_e, k0, cnt, inc_cand):
             inc_cand[cnt[e1]] = k0 + k
             cnt[e1] += 1
             t += 1
+
+
+@numba.njit(nogil=True, cache=True)
+def count_buckets(pair_e, shift, per_bucket):
+    """Pairs per bucket of edges: ``per_bucket[e >> shift] += 1`` (to cut the rows into ranges)."""
+    for t in range(pair_e.shape[0]):
+        per_bucket[pair_e[t] >> shift] += 1
 
 
 @numba.njit(nogil=True, cache=True)

@@ -4,14 +4,17 @@
   thresholds, and :func:`level_index` gives each edge the index of the highest
   threshold at or below its weight.
 * :func:`build_graph` reads the edge store and writes the symmetric CSR (with per
-  entry level and edge index) as ``.npy`` files that every unit memory-maps.
+  entry level and edge index) as ``.npy`` files that every unit memory-maps
+  (:func:`prepare_graph`, then :func:`csr_range` per range of rows).
 * :func:`enumerate_unit` lists the candidates first seen at the edges of one edge
   block (the high-to-low sweep, see ``kernels/cliques.py``), under the blow-up
   budget (clique count, work, seconds), and their ``level_min``.
   Each unit also looks up the edge ids of its candidates' member pairs while
   their rows are in cache.
-* :func:`collect_units` concatenates the units' candidates and turns their pairs
-  into the edge -> candidate CSR the fit reads (a counting sort by edge).
+* :func:`collect_tables` concatenates the units' candidates, and
+  :func:`plan_incidence` and :func:`incidence_range` turn their pairs into the
+  edge -> candidate CSR the fit reads (a counting sort by edge, a range of edges
+  per task); :func:`collect_units` runs both in one call.
 """
 
 from __future__ import annotations
@@ -23,15 +26,22 @@ import numpy as np
 import pyarrow.parquet as pq
 
 from cliquewise.kernels.cliques import sweep_with_ranges
-from cliquewise.kernels.incidence import candidate_pairs, count_rows_in, scatter_rows_in, starts_from_counts
+from cliquewise.kernels.incidence import (
+    candidate_pairs,
+    count_buckets,
+    count_rows_in,
+    scatter_rows_in,
+    starts_from_counts,
+)
 from cliquewise.store import (
-    NpyStream,
+    create_npy,
     drop_mapped_pages,
     load_npy,
     npy_blocks,
     resident_bytes,
     save_npy,
     save_npy_parts,
+    write_npy_at,
 )
 
 GRAPH_FILES = ("indptr", "nbr", "nlev", "eid", "u", "v", "lev", "weight")
@@ -83,11 +93,29 @@ READ_BLOCK = 1 << 22  # edges per block when a step streams the edge arrays
 def build_graph(edge_files: list, n_nodes: int, levels_spec, out: Path, budget: int | None = None) -> dict:
     """Read the edge store, choose levels, build the CSR; write ``.npy`` files into ``out``.
 
-    The edge columns are streamed into ``u``/``v``/``weight.npy`` file by file, the
-    levels chosen from the distinct weights, and the CSR rows built a range of rows
-    at a time, each range holding at most ``budget`` bytes of rows (``None``: all
-    rows at once). The result is the same whatever the budget: the CSR of
+    :func:`prepare_graph`, then :func:`csr_range` on each of its row ranges, one
+    after the other (the stage runs the ranges side by side). The result is the
+    same whatever the budget: the CSR of
     :func:`~cliquewise.kernels.graph.csr_from_edges`.
+    """
+    t_cpu = time.thread_time()
+    info = prepare_graph(edge_files, n_nodes, levels_spec, out, budget)
+    for a, b in info.pop("ranges"):
+        csr_range(out, a, b)
+    info["cpu"] += time.thread_time() - t_cpu
+    return info
+
+
+def prepare_graph(edge_files: list, n_nodes: int, levels_spec, out: Path, budget: int | None = None,
+                  pieces: int = 1) -> dict:
+    """Everything of the CSR but its rows: the edge columns streamed into
+    ``u``/``v``/``weight.npy`` file by file, the levels chosen from the distinct
+    weights, each edge's level (``lev.npy``), the row pointers (``indptr.npy``), and
+    empty ``nbr``/``nlev``/``eid.npy`` for :func:`csr_range` to fill.
+
+    Returns the counts and ``ranges``: consecutive row ranges, each holding at most
+    ``budget`` bytes of rows (``None``: no limit), and at least ``pieces`` of them
+    when the rows allow (about equal entries each).
     """
     t_cpu = time.thread_time()
     out.mkdir(parents=True, exist_ok=True)
@@ -110,21 +138,25 @@ def build_graph(edge_files: list, n_nodes: int, levels_spec, out: Path, budget: 
     indptr = np.zeros(n_nodes + 1, np.int64)
     np.cumsum(degree, out=indptr[1:])
     del degree
-    ranges = _row_ranges(indptr, budget, np.dtype(np.int32 if n_nodes < 2**31 else np.int64))
-    _csr_by_ranges(out, indptr, ranges, n_edges)
+    nbr_dtype = np.dtype(np.int32 if n_nodes < 2**31 else np.int64)
+    ranges = _row_ranges(indptr, budget, nbr_dtype, pieces)
+    for name, dtype in (("nbr", nbr_dtype), ("nlev", np.int32), ("eid", np.int64)):
+        create_npy(out / f"{name}.npy", dtype, 2 * n_edges)
     save_npy(out / "indptr.npy", indptr)
     save_npy(out / "levels.npy", levels)
-    return {"edges": int(n_edges), "levels": int(len(levels)), "row_ranges": len(ranges),
+    return {"edges": int(n_edges), "levels": int(len(levels)), "row_ranges": len(ranges), "ranges": ranges,
             "cpu": time.thread_time() - t_cpu}
 
 
-def _row_ranges(indptr: np.ndarray, budget: int | None, nbr_dtype) -> list[tuple[int, int]]:
-    """Consecutive row ranges whose entries fit in ``budget`` bytes (a row never splits)."""
+def _row_ranges(indptr: np.ndarray, budget: int | None, nbr_dtype, pieces: int = 1) -> list[tuple[int, int]]:
+    """Consecutive row ranges whose entries fit in ``budget`` bytes (a row never
+    splits), and no more than an equal share of ``pieces``."""
     n = len(indptr) - 1
-    if budget is None or n == 0:
-        return [(0, n)] if n else []
+    if n == 0:
+        return []
     per_entry = nbr_dtype.itemsize + 4 + 8  # nbr, nlev, eid
-    cap = max(1, int(budget) // per_entry)
+    share = -(-int(indptr[-1]) // max(1, int(pieces)))
+    cap = max(1, share if budget is None else min(share, int(budget) // per_entry))
     ranges, a = [], 0
     while a < n:
         b = int(np.searchsorted(indptr, indptr[a] + cap, side="right")) - 1
@@ -134,32 +166,29 @@ def _row_ranges(indptr: np.ndarray, budget: int | None, nbr_dtype) -> list[tuple
     return ranges
 
 
-def _csr_by_ranges(out: Path, indptr: np.ndarray, ranges, n_edges: int) -> None:
-    """Write ``nbr``/``nlev``/``eid.npy``, one range of rows at a time, each range
-    filled from one streaming pass over ``u``/``v``/``lev.npy``."""
+def csr_range(out: Path, a: int, b: int) -> dict:
+    """Rows ``[a, b)`` of the CSR, filled from one streaming pass over
+    ``u``/``v``/``lev.npy`` and written into ``nbr``/``nlev``/``eid.npy`` (made by
+    :func:`prepare_graph`) at their place."""
     from cliquewise.kernels.graph import csr_rows_scatter, csr_rows_sort
 
-    n = len(indptr) - 1
-    nbr_dtype = np.int32 if n < 2**31 else np.int64
-    m2 = 2 * n_edges
-    with NpyStream(out / "nbr.npy", nbr_dtype, m2) as f_nbr, NpyStream(out / "nlev.npy", np.int32, m2) as f_lev, \
-            NpyStream(out / "eid.npy", np.int64, m2) as f_eid:
-        for a, b in ranges:
-            base = int(indptr[a])
-            m = int(indptr[b]) - base
-            nbr = np.empty(m, nbr_dtype)
-            nlev = np.empty(m, np.int32)
-            eid = np.empty(m, np.int64)
-            cursor = indptr[a:b] - base
-            blocks = zip(npy_blocks(out / "u.npy", READ_BLOCK), npy_blocks(out / "v.npy", READ_BLOCK),
-                         npy_blocks(out / "lev.npy", READ_BLOCK))
-            for (e0, u), (_, v), (_, lev) in blocks:
-                csr_rows_scatter(u, v, lev, np.int64(e0), np.int64(a), np.int64(b), cursor, nbr, nlev, eid)
-            csr_rows_sort(indptr[a:b + 1] - base, nbr, nlev, eid)
-            f_nbr.write(nbr)
-            f_lev.write(nlev)
-            f_eid.write(eid)
-            del nbr, nlev, eid, cursor
+    t_cpu = time.thread_time()
+    indptr = load_npy(out / "indptr.npy", mmap=True)
+    base = int(indptr[a])
+    m = int(indptr[b]) - base
+    nbr = np.empty(m, load_npy(out / "nbr.npy", mmap=True).dtype)
+    nlev = np.empty(m, np.int32)
+    eid = np.empty(m, np.int64)
+    ptr = np.asarray(indptr[a:b + 1]) - base
+    cursor = ptr[:-1].copy()
+    blocks = zip(npy_blocks(out / "u.npy", READ_BLOCK), npy_blocks(out / "v.npy", READ_BLOCK),
+                 npy_blocks(out / "lev.npy", READ_BLOCK))
+    for (e0, u), (_, v), (_, lev) in blocks:
+        csr_rows_scatter(u, v, lev, np.int64(e0), np.int64(a), np.int64(b), cursor, nbr, nlev, eid)
+    csr_rows_sort(ptr, nbr, nlev, eid)
+    for name, arr in (("nbr", nbr), ("nlev", nlev), ("eid", eid)):
+        write_npy_at(out / f"{name}.npy", base, arr)
+    return {"cpu": time.thread_time() - t_cpu}
 
 
 def load_graph(folder: Path) -> dict:
@@ -361,110 +390,132 @@ def _stop_point(g: dict, s: int, e: int, cliques_left: int, work_left: int, stat
     return s, int(g["u"][s]), int(g["lev"][s])
 
 
+INC_BUCKET = 1 << 16  # edges per bucket when the incidence is cut into ranges (a power of two)
+
+
 UNIT_ARRAYS = ("ptr", "nodes", "lmax", "lmin", "pairs")
 
 
+def _unit_arrays(folder: Path, tags: list[str], name: str):
+    """One unit file at a time, memory-mapped: never all units at once."""
+    for tag in tags:
+        yield load_npy(folder / f"{tag}.{name}.npy", mmap=True)
+
+
 def collect_units(folder: Path, tags: list[str], out: Path, n_edges: int, part: str = "all",
-                  budget: int | None = None) -> dict:
+                  budget: int | None = None, pieces: int = 1) -> dict:
     """Concatenate unit outputs in unit order into the candidate table files, and
     build the edge -> candidate CSR from the units' pairs.
 
-    Writes ``cand_ptr``, ``cand_nodes``, ``level_max``, ``level_min`` (``part="tables"``)
-    and ``inc_ptr``, ``inc_cand`` (``part="incidence"``; int32 while there are fewer
-    than ``2**31`` candidates); ``part="all"`` does both. The two halves read
-    different unit files and write different outputs, so they can run side by side.
-    Unit files are read one at a time and the outputs written as they grow. The
-    incidence is built a range of edges at a time, each range holding at most
-    ``budget`` bytes (``None``: one range); the result does not depend on it.
+    Writes ``cand_ptr``, ``cand_nodes``, ``level_max``, ``level_min`` (``part="tables"``,
+    :func:`collect_tables`) and ``inc_ptr``, ``inc_cand`` (``part="incidence"``:
+    :func:`plan_incidence`, then :func:`incidence_range` on each of its edge ranges,
+    one after the other here; the stage runs the ranges and the tables side by
+    side); ``part="all"`` does both.
     """
     t_cpu = time.thread_time()
     info: dict = {}
-    out.mkdir(parents=True, exist_ok=True)
-
-    def each(name):  # one unit file at a time, memory-mapped: never all units at once
-        for tag in tags:
-            yield load_npy(folder / f"{tag}.{name}.npy", mmap=True)
-
-    unit_k = [len(load_npy(folder / f"{tag}.ptr.npy", mmap=True)) - 1 for tag in tags]
-    n_cand = int(sum(unit_k))
     if part in ("all", "tables"):
-        largest, rows = 0, 0
-
-        def joined_ptr():  # the units' candidate pointers as one pointer array
-            nonlocal largest, rows
-            yield np.zeros(1, np.int64)
-            for ptr in each("ptr"):
-                ptr = np.asarray(ptr, np.int64)
-                if len(ptr) > 1:
-                    largest = max(largest, int(np.diff(ptr).max()))
-                yield ptr[1:] + rows
-                rows += int(ptr[-1])
-
-        save_npy_parts(out / "cand_ptr.npy", joined_ptr(), np.int64, n_cand + 1)
-        for name, dtype, file in (("nodes", np.int64, "cand_nodes"), ("lmax", np.int32, "level_max"),
-                                  ("lmin", np.int32, "level_min")):
-            save_npy_parts(out / f"{file}.npy", each(name), dtype, rows if name == "nodes" else n_cand)
-        info.update(candidates=n_cand, member_rows=rows, largest_candidate=largest)
+        info.update(collect_tables(folder, tags, out))
     if part in ("all", "incidence"):
-        ranges, n_inc = _edge_ranges(each("pairs"), n_edges, budget)
-        cand_dtype = np.int32 if n_cand < 2**31 else np.int64
-        uncovered = 0
-        with NpyStream(out / "inc_ptr.npy", np.int64, n_edges + 1) as f_ptr, \
-                NpyStream(out / "inc_cand.npy", cand_dtype, n_inc) as f_cand:
-            base = 0
-            f_ptr.write(np.zeros(1, np.int64))
-            for lo, hi in ranges:
-                cnt = np.zeros(hi - lo + 2, np.int64)
-                for pairs in each("pairs"):
-                    count_rows_in(pairs, np.int64(lo), np.int64(hi), cnt)
-                starts_from_counts(cnt, np.int64(hi - lo))
-                m = int(cnt[hi - lo + 1])
-                inc_cand = np.empty(m, cand_dtype)
-                k0 = 0
-                for tag, pairs in zip(tags, each("pairs")):
-                    uptr = load_npy(folder / f"{tag}.ptr.npy")
-                    scatter_rows_in(uptr, pairs, np.int64(k0), np.int64(lo), np.int64(hi), cnt, inc_cand)
-                    k0 += len(uptr) - 1
-                rows_end = cnt[1: hi - lo + 1]  # end of each row of the range = start of the next
-                uncovered += int(np.count_nonzero(np.diff(cnt[: hi - lo + 1]) == 0))
-                f_ptr.write(rows_end + base)
-                f_cand.write(inc_cand)
-                base += m
-                del cnt, inc_cand
-        info.update(incidences=n_inc, uncovered_edges=uncovered, incidence_ranges=len(ranges))
+        plan = plan_incidence(folder, tags, out, n_edges, budget, pieces)
+        uncovered = sum(incidence_range(folder, tags, out, *r)["uncovered_edges"] for r in plan["ranges"])
+        info.update(incidences=plan["incidences"], uncovered_edges=uncovered, incidence_ranges=len(plan["ranges"]))
     info["cpu"] = time.thread_time() - t_cpu
     return info
 
 
-INC_BUCKET = 1 << 16  # edges per bucket when the incidence is cut into ranges
+def collect_tables(folder: Path, tags: list[str], out: Path) -> dict:
+    """``cand_ptr``, ``cand_nodes``, ``level_max``, ``level_min`` from the units, in unit
+    order, each written as it grows."""
+    t_cpu = time.thread_time()
+    out.mkdir(parents=True, exist_ok=True)
+    n_cand = sum(len(load_npy(folder / f"{tag}.ptr.npy", mmap=True)) - 1 for tag in tags)
+    largest, rows = 0, 0
+
+    def joined_ptr():  # the units' candidate pointers as one pointer array
+        nonlocal largest, rows
+        yield np.zeros(1, np.int64)
+        for ptr in _unit_arrays(folder, tags, "ptr"):
+            ptr = np.asarray(ptr, np.int64)
+            if len(ptr) > 1:
+                largest = max(largest, int(np.diff(ptr).max()))
+            yield ptr[1:] + rows
+            rows += int(ptr[-1])
+
+    save_npy_parts(out / "cand_ptr.npy", joined_ptr(), np.int64, n_cand + 1)
+    for name, dtype, file in (("nodes", np.int64, "cand_nodes"), ("lmax", np.int32, "level_max"),
+                              ("lmin", np.int32, "level_min")):
+        save_npy_parts(out / f"{file}.npy", _unit_arrays(folder, tags, name), dtype,
+                       rows if name == "nodes" else n_cand)
+    return {"candidates": n_cand, "member_rows": rows, "largest_candidate": largest,
+            "cpu": time.thread_time() - t_cpu}
 
 
-def _edge_ranges(pair_files, n_edges: int, budget: int | None) -> tuple[list[tuple[int, int]], int]:
-    """Edge ranges ``[lo, hi)`` whose incidence rows fit in ``budget`` bytes, and the total.
+def plan_incidence(folder: Path, tags: list[str], out: Path, n_edges: int, budget: int | None,
+                   pieces: int = 1) -> dict:
+    """Cut the incidence into edge ranges and create its two files, for
+    :func:`incidence_range` to fill range by range (side by side, in any order).
 
-    One pass over the pairs counts incidences per bucket of :data:`INC_BUCKET`
-    edges; ranges are whole buckets (a bucket larger than the budget is a range).
+    One pass over the units' pairs counts them per bucket of :data:`INC_BUCKET`
+    edges. Ranges are whole buckets: each holds at most
+    ``budget`` bytes (``None``: no limit; a bucket larger than that is a range of
+    its own), and there are at least ``pieces`` of them when the buckets allow,
+    with about equal incidences. Returns ``{"ranges": [(lo, hi, start)], "incidences": n}``,
+    ``start`` being where the range's rows begin in ``inc_cand``.
     """
-    if budget is None:
-        total = sum(len(pairs) for pairs in pair_files)
-        return ([(0, n_edges)] if n_edges else []), total
+    out.mkdir(parents=True, exist_ok=True)
     n_buckets = max(1, -(-n_edges // INC_BUCKET))
+    shift = INC_BUCKET.bit_length() - 1
+    if INC_BUCKET != 1 << shift:
+        raise ValueError("INC_BUCKET must be a power of two")
     per_bucket = np.zeros(n_buckets, np.int64)
-    for pairs in pair_files:
-        per_bucket += np.bincount(np.asarray(pairs) // INC_BUCKET, minlength=n_buckets)
+    for pairs in _unit_arrays(folder, tags, "pairs"):
+        count_buckets(pairs, np.int64(shift), per_bucket)
     total = int(per_bucket.sum())
+    n_cand = sum(len(load_npy(folder / f"{tag}.ptr.npy", mmap=True)) - 1 for tag in tags)
+    create_npy(out / "inc_ptr.npy", np.int64, n_edges + 1)
+    create_npy(out / "inc_cand.npy", np.int32 if n_cand < 2**31 else np.int64, total)
     if n_edges == 0:
-        return [], total
+        return {"ranges": [], "incidences": total}
     # bytes of a range: 8 per incidence (the id, and room for the unit file being read), 8 per edge (row counter)
     cost = per_bucket * 8 + np.minimum(INC_BUCKET, n_edges - np.arange(n_buckets) * INC_BUCKET) * 8
-    ranges, b = [], 0
     csum = np.concatenate([[0], np.cumsum(cost)])
-    while b < n_buckets:
-        c = int(np.searchsorted(csum, csum[b] + int(budget), side="right")) - 1
-        c = min(n_buckets, max(c, b + 1))
-        ranges.append((b * INC_BUCKET, min(n_edges, c * INC_BUCKET)))
-        b = c
-    return ranges, total
+    starts = np.concatenate([[0], np.cumsum(per_bucket)])
+    if budget is None:  # `pieces` ranges cut at the nearest buckets to equal shares
+        k = max(1, int(pieces))
+        cuts = np.clip(np.searchsorted(csum, csum[-1] * np.arange(1, k) / k), 1, max(1, n_buckets - 1))
+        bounds = np.unique(np.concatenate([[0], cuts, [n_buckets]]).astype(np.int64)).tolist()
+    else:  # greedy: each range as large as the budget allows, and no more than an equal share
+        cap = max(1, min(int(budget), -(-int(csum[-1]) // max(1, int(pieces)))))
+        bounds, b = [0], 0
+        while b < n_buckets:
+            c = int(np.searchsorted(csum, csum[b] + cap, side="right")) - 1
+            b = min(n_buckets, max(c, b + 1))
+            bounds.append(b)
+    ranges = [(b * INC_BUCKET, min(n_edges, c * INC_BUCKET), int(starts[b]))
+              for b, c in zip(bounds[:-1], bounds[1:])]
+    return {"ranges": ranges, "incidences": total}
+
+
+def incidence_range(folder: Path, tags: list[str], out: Path, lo: int, hi: int, start: int) -> dict:
+    """Rows ``[lo, hi)`` of the edge -> candidate CSR (a counting sort of the units'
+    pairs that fall in the range), written into the files :func:`plan_incidence`
+    made: ``inc_cand`` from ``start``, ``inc_ptr`` at ``lo + 1 .. hi``."""
+    t_cpu = time.thread_time()
+    cnt = np.zeros(hi - lo + 2, np.int64)
+    for pairs in _unit_arrays(folder, tags, "pairs"):
+        count_rows_in(pairs, np.int64(lo), np.int64(hi), cnt)
+    starts_from_counts(cnt, np.int64(hi - lo))
+    inc_cand = np.empty(int(cnt[hi - lo + 1]), load_npy(out / "inc_cand.npy", mmap=True).dtype)
+    k0 = 0
+    for uptr, pairs in zip(_unit_arrays(folder, tags, "ptr"), _unit_arrays(folder, tags, "pairs")):
+        scatter_rows_in(np.asarray(uptr), pairs, np.int64(k0), np.int64(lo), np.int64(hi), cnt, inc_cand)
+        k0 += len(uptr) - 1
+    uncovered = int(np.count_nonzero(np.diff(cnt[: hi - lo + 1]) == 0))
+    write_npy_at(out / "inc_cand.npy", start, inc_cand)
+    write_npy_at(out / "inc_ptr.npy", lo + 1, cnt[1: hi - lo + 1] + start)  # end of each row = start of the next
+    return {"uncovered_edges": uncovered, "cpu": time.thread_time() - t_cpu}
 
 
 def plan_units(n_edges: int, edges_per_unit: int) -> list[tuple[int, int]]:

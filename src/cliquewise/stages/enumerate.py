@@ -55,8 +55,10 @@ def run(ctx: StageContext) -> dict:
 
     with ctx.substep("graph") as step:
         if not RunStore.unit_done(work, "graph"):
-            info = ctx.engine.submit(parts.build_graph, edge_files, n_nodes, p["levels"], gdir, piece).result()
-            ctx.worker_cpu += info.pop("cpu", 0.0)
+            info = ctx.engine.submit(parts.prepare_graph, edge_files, n_nodes, p["levels"], gdir, piece,
+                                     ctx.engine.nthreads()).result()
+            done = ctx.engine.map(_csr_range, info.pop("ranges"), gdir)  # ranges of rows side by side
+            ctx.worker_cpu += info.pop("cpu", 0.0) + sum(d["cpu"] for d in done)
             RunStore.unit_commit(work, "graph", [f"graph/{f}.npy" for f in parts.GRAPH_FILES + ("levels",)], info)
         info = RunStore.unit_info(work, "graph")
         step.count(edges=info["edges"], levels=info["levels"])
@@ -94,10 +96,15 @@ def run(ctx: StageContext) -> dict:
         step.count(edges=n_edges, units=len(todo), candidates=sum(s.get("candidates", 0) for s in unit_stats))
 
     with ctx.substep("collect") as step:  # candidates in unit order, and the incidence by a counting sort
-        halves = ctx.engine.map(_collect, ["tables", "incidence"], work / "cl", tags_all, work, n_edges, piece)
-        cinfo = {**halves[0], **halves[1], "cpu": halves[0]["cpu"] + halves[1]["cpu"]}
+        # the tables and the incidence's edge ranges run side by side
+        plan = ctx.engine.submit(parts.plan_incidence, work / "cl", tags_all, work, n_edges, piece,
+                                 ctx.engine.nthreads()).result()
+        done = ctx.engine.map(_collect, ["tables"] + plan["ranges"], work / "cl", tags_all, work)
+        cinfo = {**done[0], "incidences": plan["incidences"], "incidence_ranges": len(plan["ranges"]),
+                 "uncovered_edges": sum(d["uncovered_edges"] for d in done[1:])}
+        ctx.worker_cpu += sum(d.pop("cpu", 0.0) for d in done)
+        cinfo.pop("cpu", None)
         step.count(candidates=cinfo["candidates"], incidences=cinfo["incidences"])
-        ctx.worker_cpu += cinfo.pop("cpu", 0.0)
         shutil.rmtree(work / "cl", ignore_errors=True)
     if cinfo["uncovered_edges"]:
         raise RuntimeError(f"internal error: {cinfo['uncovered_edges']} edges lie in no candidate")
@@ -125,8 +132,14 @@ def run(ctx: StageContext) -> dict:
     }
 
 
-def _collect(part, folder, tags, out, n_edges, budget):
-    return parts.collect_units(folder, tags, out, n_edges, part, budget)
+def _csr_range(rows, gdir):
+    return parts.csr_range(gdir, *rows)
+
+
+def _collect(item, folder, tags, out):
+    if item == "tables":
+        return parts.collect_tables(folder, tags, out)
+    return parts.incidence_range(folder, tags, out, *item)
 
 
 def _unit(item, graph_dir, max_cliques, max_seconds, work, trim):
