@@ -470,8 +470,12 @@ def plan_incidence(folder: Path, tags: list[str], out: Path, n_edges: int, budge
     if INC_BUCKET != 1 << shift:
         raise ValueError("INC_BUCKET must be a power of two")
     per_bucket = np.zeros(n_buckets, np.int64)
+    whole = budget is None and pieces <= 1  # one range: no need to count per bucket
     for pairs in _unit_arrays(folder, tags, "pairs"):
-        count_buckets(pairs, np.int64(shift), per_bucket)
+        if whole:
+            per_bucket[0] += len(pairs)
+        else:
+            count_buckets(pairs, np.int64(shift), per_bucket)
     total = int(per_bucket.sum())
     n_cand = sum(len(load_npy(folder / f"{tag}.ptr.npy", mmap=True)) - 1 for tag in tags)
     create_npy(out / "inc_ptr.npy", np.int64, n_edges + 1)

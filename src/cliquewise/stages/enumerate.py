@@ -96,7 +96,8 @@ def run(ctx: StageContext) -> dict:
         step.count(edges=n_edges, units=len(todo), candidates=sum(s.get("candidates", 0) for s in unit_stats))
 
     with ctx.substep("collect") as step:  # candidates in unit order, and the incidence by a counting sort
-        # the tables and the incidence's edge ranges run side by side
+        # the tables and the incidence's edge ranges (one per engine thread, or smaller
+        # under a memory limit) run side by side
         plan = ctx.engine.submit(parts.plan_incidence, work / "cl", tags_all, work, n_edges, piece,
                                  ctx.engine.nthreads()).result()
         done = ctx.engine.map(_collect, ["tables"] + plan["ranges"], work / "cl", tags_all, work)
