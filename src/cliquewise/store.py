@@ -171,6 +171,16 @@ class NpyStream:
             self._fh = None
 
 
+def _npy_header(fh) -> tuple[tuple, np.dtype]:
+    """Shape and dtype from the header of the ``.npy`` file open at its start; leaves
+    the file at the first item."""
+    version = np.lib.format.read_magic(fh)
+    read_header = (np.lib.format.read_array_header_1_0 if version == (1, 0)
+                   else np.lib.format.read_array_header_2_0)
+    shape, _, dtype = read_header(fh)
+    return shape, dtype
+
+
 def create_npy(path: Path, dtype, length: int) -> None:
     """An empty 1-d ``.npy`` file of ``length`` items (zeros; sparse on disk) that
     :func:`write_npy_at` fills piece by piece, possibly from several processes.
@@ -195,10 +205,7 @@ def write_npy_at(path: Path, start: int, arr) -> None:
     """Write ``arr`` into the 1-d ``.npy`` file at ``path`` from item ``start`` on
     (the file's dtype and length stay as its header says)."""
     with open(path, "r+b") as fh:
-        version = np.lib.format.read_magic(fh)
-        read_header = (np.lib.format.read_array_header_1_0 if version == (1, 0)
-                       else np.lib.format.read_array_header_2_0)
-        shape, _, dtype = read_header(fh)
+        shape, dtype = _npy_header(fh)
         a = np.ascontiguousarray(arr, dtype)
         if len(shape) != 1 or dtype.hasobject or not 0 <= int(start) <= shape[0] - len(a):
             raise StoreError(f"{path}: cannot write {len(a)} items at {start} (shape {shape}, {dtype})")
@@ -227,10 +234,7 @@ def npy_blocks(path: Path, block: int, lo: int = 0, hi: int | None = None):
     in the page cache, not in this process's resident set.
     """
     with open(path, "rb") as fh:
-        version = np.lib.format.read_magic(fh)
-        read_header = (np.lib.format.read_array_header_1_0 if version == (1, 0)
-                       else np.lib.format.read_array_header_2_0)
-        shape, _, dtype = read_header(fh)
+        shape, dtype = _npy_header(fh)
         if len(shape) != 1 or dtype.hasobject:
             raise StoreError(f"{path} is not a 1-d numeric array")
         start = fh.tell()
