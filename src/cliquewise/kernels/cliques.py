@@ -53,6 +53,7 @@ from cliquewise.kernels.graph import (
     bit_length,
     degeneracy_kernel,
     find_edge,
+    prefetch,
     prefetch_member_rows,
 )
 from cliquewise.kernels.graph import intersect_sorted as _isect
@@ -90,6 +91,7 @@ __all__ = [
 _I0 = np.int64(0)
 _I1 = np.int64(1)
 _I2 = np.int64(2)
+_AHEAD = 16  # edges between a prefetch of a row and its use (a row pointer: twice as far)
 
 
 # --------------------------------------------------------------------------
@@ -264,6 +266,15 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
     while e < edge_hi:
         a = u[e]
         b = v[e]
+        # ask early for the row pointer, then the row, of the edges to come: the
+        # edges of a block share their first end, so the rows of the second ends
+        # are the ones that miss the cache
+        if e + 2 * _AHEAD < edge_hi:
+            prefetch(indptr, v[e + 2 * _AHEAD])
+        if e + _AHEAD < edge_hi:
+            q = indptr[v[e + _AHEAD]]
+            prefetch(nbr, q)
+            prefetch(nlev, q)
         l = np.int64(lev[e])
         alo = indptr[a]
         ahi = indptr[a + 1]
@@ -521,6 +532,47 @@ def _survivors_level(indptr, nbr, nlev, nodes, lo, hi, skip1, skip2, xs, ms, cap
 
 
 @numba.njit(nogil=True, cache=True)
+def _best_survivor(indptr, nbr, nlev, nodes, lo, hi, skip1, skip2, xs, ms, na):
+    """One more than the largest ``min_c level(x, c)`` over the survivors ``xs[:na]``
+    and the members ``c`` of ``nodes[lo:hi]`` other than ``skip1`` and ``skip2``
+    (0 when no survivor is adjacent to all of them); ``ms`` starts as each
+    survivor's bound from ``skip1`` and ``skip2``, and ``xs``/``ms`` are reordered.
+
+    Branch and bound: survivors are tried from the highest bound down, and a
+    survivor's member rows are searched only while it can still beat the best
+    value found. The survivors of a sweep's clique are mostly adjacent to all
+    members (at lower levels), so narrowing them all, as :func:`_survivors_level`
+    does, merges every member's row; here the first one or two usually settle it.
+    """
+    best = np.int64(-1)
+    while na > 0:
+        j = np.int64(0)
+        for t in range(1, na):
+            if ms[t] > ms[j]:
+                j = t
+        val = np.int64(ms[j])
+        if val <= best:
+            break  # no survivor left can beat it
+        x = xs[j]
+        na -= 1
+        xs[j] = xs[na]
+        ms[j] = ms[na]
+        for i in range(lo, hi):
+            c = nodes[i]
+            if c == skip1 or c == skip2:
+                continue
+            q = find_edge(indptr, nbr, c, x)
+            if q < 0:
+                val = -1  # not adjacent to c
+                break
+            val = min(val, np.int64(nlev[q]))
+            if val <= best:
+                break
+        best = max(best, val)
+    return best + 1
+
+
+@numba.njit(nogil=True, cache=True)
 def _range_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, nodes, k, xs, ms, tpos,
                      pairs, w):
     """``level_min`` and the member pairs' edge ids of clique ``k``, listed from edge
@@ -530,13 +582,13 @@ def _range_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, nodes,
     :func:`cliquewise.kernels.incidence.pair_edges`, with less work: a vertex that
     extends the clique is a common neighbour of ``a`` and ``b``, so the survivors
     start as that neighbourhood less the members (with their levels to ``a`` and
-    ``b`` already at hand) and only the other members' rows are searched; the pairs
+    ``b`` already at hand) and only the other members' rows are searched, by
+    :func:`_best_survivor`; the pairs
     with ``a`` or ``b`` read their edge ids off the same positions. Writes the pairs
     at ``pairs[w:]`` and returns ``(level_min, w + pairs written)``.
     """
     lo = ptr[k]
     hi = ptr[k + 1]
-    cap = xs.shape[0] // 2
     na = np.int64(0)
     h = lo
     for t in range(m):  # both ascending: a merge
@@ -549,9 +601,11 @@ def _range_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, nodes,
         xs[na] = x
         ms[na] = min(nlev[posA[t]], nlev[posB[t]])
         na += 1
-    lmin = _survivors_level(indptr, nbr, nlev, nodes, lo, hi, a, b, xs, ms, cap, na)
+    lmin = _best_survivor(indptr, nbr, nlev, nodes, lo, hi, a, b, xs, ms, na)
     for i in range(lo, hi - 1):
         ci = nodes[i]
+        qlo = np.int64(indptr[ci])  # the later members come in ascending order: search after the last
+        qhi = np.int64(indptr[ci + 1])
         for j in range(i + 1, hi):
             cj = nodes[j]
             if ci == a or ci == b:
@@ -562,10 +616,18 @@ def _range_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, nodes,
             elif cj == a or cj == b:
                 pe = eid[posA[tpos[i - lo]]] if cj == a else eid[posB[tpos[i - lo]]]
             else:
-                q = find_edge(indptr, nbr, ci, cj)
-                if q < 0:
+                q = qlo
+                r = qhi
+                while q < r:  # binary search of cj in the rest of the row of ci
+                    mid = (q + r) >> 1
+                    if nbr[mid] < cj:
+                        q = mid + 1
+                    else:
+                        r = mid
+                if q == qhi or nbr[q] != cj:
                     raise ValueError("sweep: a listed clique has a member pair that is not an edge")
                 pe = eid[q]
+                qlo = q + 1
             pairs[w] = pe
             w += 1
     return lmin, w
