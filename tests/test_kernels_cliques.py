@@ -436,12 +436,12 @@ def _pair_edges_reference(u, v, ptr, nodes):
     return np.array(out, np.int64)
 
 
-def _check_ranges(n, u, v, lev, small=64, split=1024, cuts=None):
+def _check_ranges(n, u, v, lev, small=64, split=1024, cuts=None, table=None):
     csr = csr_from_edges(n, u, v, lev)
     cuts = [0, len(u)] if cuts is None else cuts
     for lo, hi in zip(cuts[:-1], cuts[1:]):
         want = sweep_candidates(*csr, u, v, lev, lo, hi, _small=small, _split=split)
-        got = sweep_with_ranges(*csr, u, v, lev, lo, hi, _small=small, _split=split)
+        got = sweep_with_ranges(*csr, u, v, lev, lo, hi, _small=small, _split=split, _table=table)
         for a, b in zip(want, got[:5]):
             np.testing.assert_array_equal(a, b)
         ptr, nodes = got[0], got[1]
@@ -452,11 +452,13 @@ def _check_ranges(n, u, v, lev, small=64, split=1024, cuts=None):
 
 
 @settings(max_examples=150, deadline=None)
-@given(weighted_graphs(), st.sampled_from(PATHS))
-def test_sweep_with_ranges_gives_level_min_and_pair_edges_of_the_references(graph, path):
+@given(weighted_graphs(), st.sampled_from(PATHS), st.sampled_from([None, 0, 3]))
+def test_sweep_with_ranges_gives_level_min_and_pair_edges_of_the_references(graph, path, table):
+    # table: the link table for every edge (None: the default size), for none (0:
+    # binary searches in the members' rows), or for common neighbourhoods of <= 3
     n, u, v, lev, rng = graph
     cuts = sorted(set(rng.integers(0, len(u) + 1, 3).tolist()) | {0, len(u)})
-    _check_ranges(n, u, v, lev, small=path[0], split=path[1], cuts=cuts)
+    _check_ranges(n, u, v, lev, small=path[0], split=path[1], cuts=cuts, table=table)
 
 
 @pytest.mark.parametrize("make", [nx.les_miserables_graph, nx.karate_club_graph])
@@ -465,7 +467,8 @@ def test_sweep_with_ranges_on_shipped_graphs(make, small, split):
     # networkx's shipped weighted graphs (Les Miserables co-appearances; Zachary's karate club)
     n, u, v, w, lev = from_networkx(make())
     order = np.argsort(-lev, kind="stable")  # as the stage sweeps: high levels first
-    _check_ranges(n, u[order], v[order], lev[order], small=small, split=split)
+    for table in (None, 0):  # with the link table, and by binary searches
+        _check_ranges(n, u[order], v[order], lev[order], small=small, split=split, table=table)
 
 
 @pytest.mark.parametrize("small, split", [(64, 1024), (0, 0)])

@@ -56,6 +56,7 @@ from cliquewise.kernels.graph import (
     prefetch,
     prefetch_member_rows,
 )
+from cliquewise.kernels.graph import intersect_merge
 from cliquewise.kernels.graph import intersect_sorted as _isect
 from cliquewise.kernels.localbk import (
     FULL,
@@ -91,6 +92,7 @@ __all__ = [
 _I0 = np.int64(0)
 _I1 = np.int64(1)
 _I2 = np.int64(2)
+_TABLE_M = 128  # common neighbourhoods up to this size get a link table (_edge_ranges_and_pairs)
 _AHEAD = 16  # edges between a prefetch of a row and its use (a row pointer: twice as far)
 
 
@@ -238,7 +240,7 @@ def maximal_cliques_reference(n, u, v):
 # --------------------------------------------------------------------------
 @numba.njit(nogil=True, cache=True)
 def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
-                  max_cliques, max_work, small_max, split_at, ranges):
+                  max_cliques, max_work, small_max, split_at, ranges, table_m):
     sm = np.empty(SM_SIZE, np.uint64)
     inv = np.empty(SMALL, np.int64)
     cbuf = np.empty(SMALL + 3, np.int64)
@@ -259,6 +261,14 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
     xs = np.empty(128, np.int64)
     ms = np.empty(128, np.int32)
     tpos = np.empty(66, np.int64)
+    # for _edge_ranges_and_pairs: the common neighbourhood's ids, each one's row in
+    # the link table, member marks, merge outputs, the table itself
+    tv = np.empty(64, np.int64)
+    slot = np.empty(64, np.int64)
+    mem = np.zeros(64, np.bool_)
+    outA = np.empty(64, np.int64)
+    outB = np.empty(64, np.int64)
+    links = np.empty(table_m * table_m if ranges else 0, np.int64)
     lmin = np.empty(1024 if ranges else 0, np.int32)
     pairs = np.empty(4096 if ranges else 0, np.int64)
     n_pairs = np.int64(0)
@@ -292,6 +302,11 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
                 xs = np.empty(4 * need, np.int64)
                 ms = np.empty(4 * need, np.int32)
                 tpos = np.empty(2 * need + 2, np.int64)
+                tv = np.empty(2 * need, np.int64)
+                slot = np.empty(2 * need, np.int64)
+                mem = np.zeros(2 * need, np.bool_)
+                outA = np.empty(2 * need, np.int64)
+                outB = np.empty(2 * need, np.int64)
         m, wk = _isect(nbr, alo, ahi, nbr, blo, bhi, posA, posB)
         cnt[2] += wk
         # S = common neighbours in G_l; ex = joined to a or b by an earlier edge of
@@ -359,12 +374,23 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
             if ranges and cnt[3] == OK:
                 while lmin.shape[0] < K1:
                     lmin = grown(lmin, K0)
-                for k in range(K0, K1):
-                    sz = ptr[k + 1] - ptr[k]
-                    while pairs.shape[0] < n_pairs + sz * (sz - 1) // 2:
+                if m <= table_m:  # the members' links from one pass over each member's row
+                    need_pairs = n_pairs
+                    for k in range(K0, K1):
+                        sz = ptr[k + 1] - ptr[k]
+                        need_pairs += sz * (sz - 1) // 2
+                    while pairs.shape[0] < need_pairs:
                         pairs = grown(pairs, n_pairs)
-                    lmin[k], n_pairs = _range_and_pairs(indptr, nbr, nlev, eid, a, b, np.int64(e), m, posA, posB,
-                                                        ptr, nodes, k, xs, ms, tpos, pairs, n_pairs)
+                    n_pairs = _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, np.int64(e), m, posA, posB,
+                                                     ptr, nodes, K0, K1, lmin, pairs, n_pairs, xs, ms, tpos,
+                                                     tv, slot, mem, outA, outB, links)
+                else:
+                    for k in range(K0, K1):
+                        sz = ptr[k + 1] - ptr[k]
+                        while pairs.shape[0] < n_pairs + sz * (sz - 1) // 2:
+                            pairs = grown(pairs, n_pairs)
+                        lmin[k], n_pairs = _range_and_pairs(indptr, nbr, nlev, eid, a, b, np.int64(e), m, posA,
+                                                            posB, ptr, nodes, k, xs, ms, tpos, pairs, n_pairs)
         if cnt[3] != OK:
             break
         if cnt[2] > max_work:
@@ -378,7 +404,8 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
 
 
 def sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
-                     max_cliques=None, max_work=None, *, _small=SMALL, _split=SPLIT, _ranges=False):
+                     max_cliques=None, max_work=None, *, _small=SMALL, _split=SPLIT, _ranges=False,
+                     _table=None):
     """Candidate cliques first seen at the level of each edge in a block.
 
     For every edge ``e`` in ``[edge_lo, edge_hi)`` (indices into ``u``/``v``/``lev``)
@@ -417,11 +444,13 @@ def sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
     -----
     Common neighbourhoods of up to ``_small`` (<= 64) vertices use one-word
     bitsets, up to ``_split`` multi-word bitsets, larger ones are first split by a
-    degeneracy order. The two private knobs let tests drive every path on small
-    graphs.
+    degeneracy order. These private knobs (and ``_table``, see
+    :func:`sweep_with_ranges`) let tests drive every path on small graphs.
     """
     if not 0 <= _small <= SMALL:
         raise ValueError("_small must lie in [0, 64]")
+    if _table is not None and not 0 <= _table <= 4096:
+        raise ValueError("_table must lie in [0, 4096]")
     u = np.ascontiguousarray(u, np.int64)
     v = np.ascontiguousarray(v, np.int64)
     lev = np.ascontiguousarray(lev, np.int32)
@@ -439,14 +468,14 @@ def sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
     ptr, nodes, lvl, status, work, lmin, pairs = _sweep_kernel(
         np.asarray(indptr, np.int64), nbr, nlev, eid, u, v, lev,
         np.int64(edge_lo), np.int64(edge_hi), mc, mw, np.int64(_small),
-        np.int64(_split), bool(_ranges))
+        np.int64(_split), bool(_ranges), np.int64(_TABLE_M if _table is None else _table))
     if _ranges:
         return ptr, nodes, lvl, int(status), int(work), lmin, pairs
     return ptr, nodes, lvl, int(status), int(work)
 
 
 def sweep_with_ranges(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
-                      max_cliques=None, max_work=None, *, _small=SMALL, _split=SPLIT):
+                      max_cliques=None, max_work=None, *, _small=SMALL, _split=SPLIT, _table=None):
     """:func:`sweep_candidates`, also returning each clique's :func:`level_min` and the
     edge ids of its member pairs as
     :func:`cliquewise.kernels.incidence.candidate_pairs` gives them (int64).
@@ -454,11 +483,13 @@ def sweep_with_ranges(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None
     Returns ``(ptr, nodes, level_max, status, work_done, level_min, pair_edges)``;
     the last two are complete only when ``status`` is 0. They are worked out for
     each edge's cliques right after the search, from the common neighbourhood it
-    has just intersected (see ``_range_and_pairs``), which costs less than the
-    separate passes.
+    has just intersected, which costs less than the separate passes: by a table of
+    the members' links to that neighbourhood when it has at most ``_table``
+    vertices (default 128; ``_edge_ranges_and_pairs``), else by binary searches
+    in the members' rows (``_range_and_pairs``). ``_table`` is for tests.
     """
     return sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi, max_cliques, max_work,
-                            _small=_small, _split=_split, _ranges=True)
+                            _small=_small, _split=_split, _ranges=True, _table=_table)
 
 
 
@@ -570,6 +601,106 @@ def _best_survivor(indptr, nbr, nlev, nodes, lo, hi, skip1, skip2, xs, ms, na):
                 break
         best = max(best, val)
     return best + 1
+
+
+@numba.njit(nogil=True, cache=True)
+def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, nodes, K0, K1, lmin,
+                           pairs, w, xs, ms, tix, tv, slot, mem, outA, outB, links):
+    """``level_min`` and the member pairs' edge ids of cliques ``K0 .. K1 - 1``, all
+    listed from edge ``e = (a, b)`` whose full common neighbourhood ``T`` is
+    ``nbr[posA[:m]]``: the values of :func:`_range_and_pairs`, by table lookups.
+
+    Every member other than ``a`` and ``b`` lies in ``T``, and so does every vertex
+    that could extend a clique. So one merge of each such member's row with ``T``
+    gives all it is asked about: ``links[r * m + t]`` is the CSR position of the
+    link from the member of table row ``r`` to ``T[t]`` (-1: none). A member met
+    in several of the edge's cliques is merged once. Pairs with ``a`` or ``b``
+    read their positions off ``posA``/``posB``. Returns ``w`` + pairs written.
+    """
+    for t in range(m):
+        tv[t] = nbr[posA[t]]
+        slot[t] = -1
+    nrow = np.int64(0)
+    for k in range(K0, K1):
+        lo = ptr[k]
+        hi = ptr[k + 1]
+        h = np.int64(0)
+        for i in range(lo, hi):  # each member's place in T (a and b: -1), and its table row
+            c = nodes[i]
+            if c == a or c == b:
+                tix[i - lo] = -1
+                continue
+            while h < m and tv[h] < c:
+                h += 1
+            if h == m or tv[h] != c:
+                raise ValueError("sweep: a listed clique has a member outside the common neighbourhood")
+            tix[i - lo] = h
+            mem[h] = True
+            if slot[h] < 0:
+                slot[h] = nrow
+                base = nrow * m
+                for t in range(m):
+                    links[base + t] = -1
+                nl = intersect_merge(nbr, np.int64(indptr[c]), np.int64(indptr[c + 1]), tv, _I0, m, outA, outB)
+                for t in range(nl):
+                    links[base + outB[t]] = outA[t]
+                nrow += 1
+        # survivors: T less the members, bounded by their levels to a and b
+        na = np.int64(0)
+        for t in range(m):
+            if mem[t]:
+                continue
+            xs[na] = t
+            ms[na] = min(nlev[posA[t]], nlev[posB[t]])
+            na += 1
+        best = np.int64(-1)  # branch and bound, as in _best_survivor
+        while na > 0:
+            j = np.int64(0)
+            for t in range(1, na):
+                if ms[t] > ms[j]:
+                    j = t
+            val = np.int64(ms[j])
+            if val <= best:
+                break
+            x = xs[j]
+            na -= 1
+            xs[j] = xs[na]
+            ms[j] = ms[na]
+            for i in range(hi - lo):
+                ti = tix[i]
+                if ti < 0:
+                    continue
+                q = links[slot[ti] * m + x]
+                if q < 0:
+                    val = -1
+                    break
+                val = min(val, np.int64(nlev[q]))
+                if val <= best:
+                    break
+            best = max(best, val)
+        lmin[k] = best + 1
+        for i in range(hi - lo):
+            if tix[i] >= 0:
+                mem[tix[i]] = False
+        for i in range(lo, hi - 1):
+            ci = nodes[i]
+            ti = tix[i - lo]
+            for j in range(i + 1, hi):
+                tj = tix[j - lo]
+                if ti < 0 and tj < 0:
+                    pe = e
+                elif ti < 0:
+                    pe = eid[posA[tj]] if ci == a else eid[posB[tj]]
+                elif tj < 0:
+                    pe = eid[posA[ti]] if nodes[j] == a else eid[posB[ti]]
+                else:
+                    q = links[slot[ti] * m + tj]
+                    if q < 0:
+                        raise ValueError("sweep: a listed clique has a member pair that is not an edge")
+                    pe = eid[q]
+                pairs[w] = pe
+                w += 1
+    return w
 
 
 @numba.njit(nogil=True, cache=True)
