@@ -16,7 +16,7 @@ from _support import lesmis_export, read_edges
 
 from cliquewise.config import Settings
 from cliquewise.pipeline import run_pipeline
-from cliquewise.store import RunStore, StoreError, save_npy, load_npy
+from cliquewise.store import NpyStream, RunStore, StoreError, load_npy, save_npy
 
 
 @pytest.fixture
@@ -511,3 +511,37 @@ def test_save_npy_parts_equals_numpy_concatenate(tmp_path):
     np.testing.assert_array_equal(load_npy(tmp_path / "a.npy", mmap=True), got)
     with pytest.raises(ValueError, match="expected"):
         save_npy_parts(tmp_path / "b.npy", iter(parts), np.int64, 99)
+
+
+@pytest.mark.parametrize("copy", ["os", "fails at once", "fails after one piece", "absent"])
+def test_npy_stream_append_file_equals_numpy_concatenate(tmp_path, monkeypatch, copy):
+    # reference: numpy's concatenate of the same arrays
+    rng = np.random.default_rng(3)
+    parts = [rng.integers(-9, 9, n).astype(dt) for n, dt in ((5, np.int64), (0, np.int64), (7, np.int32),
+                                                               (3, np.int64), (4, np.int64))]
+    files = []
+    for i, a in enumerate(parts):
+        files.append(tmp_path / f"p{i}.npy")
+        np.save(files[-1], a)
+    real = getattr(os, "copy_file_range", None)
+    calls = []
+
+    def flaky(src, dst, count, offset_src=None):
+        calls.append(count)
+        if copy == "fails at once" or len(calls) > 1:
+            raise OSError(18, "cross-device link")
+        return real(src, dst, min(count, 16), offset_src)  # a short copy: the rest must follow
+
+    if copy == "absent":
+        monkeypatch.delattr(os, "copy_file_range", raising=False)
+    elif copy != "os":
+        monkeypatch.setattr(os, "copy_file_range", flaky)
+    out = tmp_path / "all.npy"
+    total = sum(len(a) for a in parts) + 2
+    with NpyStream(out, np.int64, total) as s:
+        s.write(np.array([100, 101]))
+        for f in files:
+            s.append_file(f)
+    want = np.concatenate([[100, 101]] + [a.astype(np.int64) for a in parts])
+    np.testing.assert_array_equal(np.load(out), want)
+    assert np.load(out).dtype == np.int64

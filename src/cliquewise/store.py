@@ -152,6 +152,41 @@ class NpyStream:
         self._fh.write(memoryview(a).cast("B"))
         self.n += len(a)
 
+    def append_file(self, path: Path) -> None:
+        """Append the items of the 1-d ``.npy`` file at ``path``. Of the same dtype,
+        its bytes are copied by the operating system (``copy_file_range``, no pass
+        through this process); else, or where the file system cannot, block by block."""
+        with open(path, "rb") as fh:
+            shape, dtype = _npy_header(fh)
+            if len(shape) != 1 or dtype.hasobject:
+                raise StoreError(f"{path} is not a 1-d numeric array")
+            if dtype == self.dtype and hasattr(os, "copy_file_range"):
+                self._fh.flush()
+                start = fh.tell()
+                src, left = start, shape[0] * dtype.itemsize
+                try:
+                    while left:
+                        k = os.copy_file_range(fh.fileno(), self._fh.fileno(), left, src)
+                        if k == 0:
+                            raise StoreError(f"{path} is shorter than its header says")
+                        src += k
+                        left -= k
+                except OSError:  # not on this file system: the rest block by block
+                    pass
+                self._fh.seek(0, os.SEEK_END)  # the buffered writer goes on after the copied bytes
+                done = (src - start) // dtype.itemsize
+                self.n += done
+                fh.seek(src)
+                rest = shape[0] - done
+            else:
+                rest = shape[0]
+            while rest:
+                a = np.fromfile(fh, dtype=dtype, count=min(rest, 1 << 22))
+                if len(a) == 0:
+                    raise StoreError(f"{path} is shorter than its header says")
+                self.write(a)
+                rest -= len(a)
+
     def close(self) -> None:
         if self._fh is None:
             return

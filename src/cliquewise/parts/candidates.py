@@ -34,6 +34,7 @@ from cliquewise.kernels.incidence import (
     starts_from_counts,
 )
 from cliquewise.store import (
+    NpyStream,
     create_npy,
     drop_mapped_pages,
     load_npy,
@@ -427,7 +428,7 @@ def collect_units(folder: Path, tags: list[str], out: Path, n_edges: int, part: 
 
 def collect_tables(folder: Path, tags: list[str], out: Path) -> dict:
     """``cand_ptr``, ``cand_nodes``, ``level_max``, ``level_min`` from the units, in unit
-    order, each written as it grows."""
+    order, each written as it grows (all but the pointers copied file to file)."""
     t_cpu = time.thread_time()
     out.mkdir(parents=True, exist_ok=True)
     n_cand = sum(len(load_npy(folder / f"{tag}.ptr.npy", mmap=True)) - 1 for tag in tags)
@@ -446,8 +447,9 @@ def collect_tables(folder: Path, tags: list[str], out: Path) -> dict:
     save_npy_parts(out / "cand_ptr.npy", joined_ptr(), np.int64, n_cand + 1)
     for name, dtype, file in (("nodes", np.int64, "cand_nodes"), ("lmax", np.int32, "level_max"),
                               ("lmin", np.int32, "level_min")):
-        save_npy_parts(out / f"{file}.npy", _unit_arrays(folder, tags, name), dtype,
-                       rows if name == "nodes" else n_cand)
+        with NpyStream(out / f"{file}.npy", dtype, rows if name == "nodes" else n_cand) as table:
+            for tag in tags:  # file to file, by the operating system
+                table.append_file(folder / f"{tag}.{name}.npy")
     return {"candidates": n_cand, "member_rows": rows, "largest_candidate": largest,
             "cpu": time.thread_time() - t_cpu}
 
