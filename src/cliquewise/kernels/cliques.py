@@ -563,6 +563,22 @@ def _survivors_level(indptr, nbr, nlev, nodes, lo, hi, skip1, skip2, xs, ms, cap
 
 
 @numba.njit(nogil=True, cache=True)
+def _pop_highest(xs, ms, na):
+    """Take the survivor of highest bound out of ``xs[:na]``/``ms[:na]`` (the last
+    one fills its place); returns ``(survivor, bound, na - 1)``."""
+    j = np.int64(0)
+    for t in range(1, na):
+        if ms[t] > ms[j]:
+            j = t
+    x = xs[j]
+    val = np.int64(ms[j])
+    na -= 1
+    xs[j] = xs[na]
+    ms[j] = ms[na]
+    return x, val, na
+
+
+@numba.njit(nogil=True, cache=True)
 def _best_survivor(indptr, nbr, nlev, nodes, lo, hi, skip1, skip2, xs, ms, na):
     """One more than the largest ``min_c level(x, c)`` over the survivors ``xs[:na]``
     and the members ``c`` of ``nodes[lo:hi]`` other than ``skip1`` and ``skip2``
@@ -577,17 +593,9 @@ def _best_survivor(indptr, nbr, nlev, nodes, lo, hi, skip1, skip2, xs, ms, na):
     """
     best = np.int64(-1)
     while na > 0:
-        j = np.int64(0)
-        for t in range(1, na):
-            if ms[t] > ms[j]:
-                j = t
-        val = np.int64(ms[j])
+        x, val, na = _pop_highest(xs, ms, na)
         if val <= best:
             break  # no survivor left can beat it
-        x = xs[j]
-        na -= 1
-        xs[j] = xs[na]
-        ms[j] = ms[na]
         for i in range(lo, hi):
             c = nodes[i]
             if c == skip1 or c == skip2:
@@ -655,17 +663,9 @@ def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, 
             na += 1
         best = np.int64(-1)  # branch and bound, as in _best_survivor
         while na > 0:
-            j = np.int64(0)
-            for t in range(1, na):
-                if ms[t] > ms[j]:
-                    j = t
-            val = np.int64(ms[j])
+            x, val, na = _pop_highest(xs, ms, na)
             if val <= best:
                 break
-            x = xs[j]
-            na -= 1
-            xs[j] = xs[na]
-            ms[j] = ms[na]
             for i in range(hi - lo):
                 ti = tix[i]
                 if ti < 0:
