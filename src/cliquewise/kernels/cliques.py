@@ -53,6 +53,7 @@ from cliquewise.kernels.graph import (
     bit_length,
     degeneracy_kernel,
     find_edge,
+    position_in,
     prefetch,
     prefetch_member_rows,
 )
@@ -374,21 +375,18 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
             if ranges and cnt[3] == OK:
                 while lmin.shape[0] < K1:
                     lmin = grown(lmin, K0)
+                need_pairs = n_pairs
+                for k in range(K0, K1):
+                    sz = ptr[k + 1] - ptr[k]
+                    need_pairs += sz * (sz - 1) // 2
+                while pairs.shape[0] < need_pairs:
+                    pairs = grown(pairs, n_pairs)
                 if m <= table_m:  # the members' links from one pass over each member's row
-                    need_pairs = n_pairs
-                    for k in range(K0, K1):
-                        sz = ptr[k + 1] - ptr[k]
-                        need_pairs += sz * (sz - 1) // 2
-                    while pairs.shape[0] < need_pairs:
-                        pairs = grown(pairs, n_pairs)
                     n_pairs = _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, np.int64(e), m, posA, posB,
                                                      ptr, nodes, K0, K1, lmin, pairs, n_pairs, xs, ms, tpos,
                                                      tv, slot, mem, outA, outB, links)
                 else:
                     for k in range(K0, K1):
-                        sz = ptr[k + 1] - ptr[k]
-                        while pairs.shape[0] < n_pairs + sz * (sz - 1) // 2:
-                            pairs = grown(pairs, n_pairs)
                         lmin[k], n_pairs = _range_and_pairs(indptr, nbr, nlev, eid, a, b, np.int64(e), m, posA,
                                                             posB, ptr, nodes, k, xs, ms, tpos, pairs, n_pairs)
         if cnt[3] != OK:
@@ -747,15 +745,8 @@ def _range_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, nodes,
             elif cj == a or cj == b:
                 pe = eid[posA[tpos[i - lo]]] if cj == a else eid[posB[tpos[i - lo]]]
             else:
-                q = qlo
-                r = qhi
-                while q < r:  # binary search of cj in the rest of the row of ci
-                    mid = (q + r) >> 1
-                    if nbr[mid] < cj:
-                        q = mid + 1
-                    else:
-                        r = mid
-                if q == qhi or nbr[q] != cj:
+                q = position_in(nbr, qlo, qhi, cj)  # in the rest of the row of ci
+                if q < 0:
                     raise ValueError("sweep: a listed clique has a member pair that is not an edge")
                 pe = eid[q]
                 qlo = q + 1

@@ -35,6 +35,7 @@ __all__ = [
     "csr_rows_scatter",
     "csr_rows_sort",
     "find_edge",
+    "position_in",
     "find_edge_reference",
     "intersect_sorted",
     "intersect_merge",
@@ -369,15 +370,20 @@ def find_edge(indptr, nbr, a, b):
 
     The position indexes ``nbr``, ``nlev`` and ``eid``.
     """
-    lo = indptr[a]
-    hi = indptr[a + 1]
+    return position_in(nbr, np.int64(indptr[a]), np.int64(indptr[a + 1]), b)
+
+
+@_leaf
+def position_in(arr, lo, hi, x):
+    """Position of ``x`` in the ascending ``arr[lo:hi]`` (binary search), or -1."""
+    end = hi
     while lo < hi:
         mid = (lo + hi) >> 1
-        if nbr[mid] < b:
+        if arr[mid] < x:
             lo = mid + 1
         else:
             hi = mid
-    if lo < indptr[a + 1] and nbr[lo] == b:
+    if lo < end and arr[lo] == x:
         return lo
     return -1
 
