@@ -90,6 +90,9 @@ __all__ = [
 
 # Scalars passed to other kernels are typed int64 on purpose: a bare literal makes
 # numba compile an extra specialisation of the callee for that literal value.
+# per-edge helpers of the sweep never allocate: compiled without reference counting
+# (see cliquewise.kernels.localbk, Implementation note)
+_leaf = numba.njit(nogil=True, cache=True, _nrt=False)
 _I0 = np.int64(0)
 _I1 = np.int64(1)
 _I2 = np.int64(2)
@@ -332,6 +335,11 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
         W0 = cnt[2]
         pre[0] = a
         pre[1] = b
+        table = ranges and m <= table_m  # the cliques' ranges and pairs come from a link table on T
+        if table:
+            for t in range(m):
+                tv[t] = nbr[posA[t]]
+                slot[t] = -1
         if s == 0:
             put_clique(ptr, nodes, cnt, pre, _I2, max_cliques)
         elif p > 0 and s > split_at:
@@ -381,7 +389,7 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
                     need_pairs += sz * (sz - 1) // 2
                 while pairs.shape[0] < need_pairs:
                     pairs = grown(pairs, n_pairs)
-                if m <= table_m:  # the members' links from one pass over each member's row
+                if table:  # the members' links from one pass over each member's row
                     n_pairs = _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, np.int64(e), m, posA, posB,
                                                      ptr, nodes, K0, K1, lmin, pairs, n_pairs, xs, ms, tpos,
                                                      tv, slot, mem, outA, outB, links)
@@ -560,7 +568,7 @@ def _survivors_level(indptr, nbr, nlev, nodes, lo, hi, skip1, skip2, xs, ms, cap
     return m + 1
 
 
-@numba.njit(nogil=True, cache=True)
+@_leaf
 def _pop_highest(xs, ms, na):
     """Take the survivor of highest bound out of ``xs[:na]``/``ms[:na]`` (the last
     one fills its place); returns ``(survivor, bound, na - 1)``."""
@@ -576,7 +584,7 @@ def _pop_highest(xs, ms, na):
     return x, val, na
 
 
-@numba.njit(nogil=True, cache=True)
+@_leaf
 def _best_survivor(indptr, nbr, nlev, nodes, lo, hi, skip1, skip2, xs, ms, na):
     """One more than the largest ``min_c level(x, c)`` over the survivors ``xs[:na]``
     and the members ``c`` of ``nodes[lo:hi]`` other than ``skip1`` and ``skip2``
@@ -609,7 +617,7 @@ def _best_survivor(indptr, nbr, nlev, nodes, lo, hi, skip1, skip2, xs, ms, na):
     return best + 1
 
 
-@numba.njit(nogil=True, cache=True)
+@_leaf
 def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, nodes, K0, K1, lmin,
                            pairs, w, xs, ms, tix, tv, slot, mem, outA, outB, links):
     """``level_min`` and the member pairs' edge ids of cliques ``K0 .. K1 - 1``, all
@@ -619,27 +627,35 @@ def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, 
     Every member other than ``a`` and ``b`` lies in ``T``, and so does every vertex
     that could extend a clique. So one merge of each such member's row with ``T``
     gives all it is asked about: ``links[r * m + t]`` is the CSR position of the
-    link from the member of table row ``r`` to ``T[t]`` (-1: none). A member met
-    in several of the edge's cliques is merged once. Pairs with ``a`` or ``b``
-    read their positions off ``posA``/``posB``. Returns ``w`` + pairs written.
+    link from the member of table row ``r`` to ``T[t]`` (-1: none). ``tv`` holds
+    ``T`` and ``slot[t]`` the table row of ``T[t]`` (the caller sets all to -1:
+    none yet); a member met in several of the edge's cliques is merged once.
+    Pairs with ``a`` or ``b`` read their positions off ``posA``/``posB``. Returns
+    ``w`` + pairs written.
+
+    Per clique, ``tix[i]`` is member ``i``'s place in ``T`` (-1 for ``a`` and
+    ``b``), found by a branch-free binary search of the short sorted ``T``, and
+    ``outA`` holds the table offsets ``r * m`` of the members other than ``a``
+    and ``b`` (``xs``/``outB`` take a merge's output before they hold survivors).
     """
-    for t in range(m):
-        tv[t] = nbr[posA[t]]
-        slot[t] = -1
     nrow = np.int64(0)
+    bad = False
     for k in range(K0, K1):
         lo = ptr[k]
         hi = ptr[k + 1]
-        h = np.int64(0)
+        nr = np.int64(0)
         for i in range(lo, hi):  # each member's place in T (a and b: -1), and its table row
             c = nodes[i]
             if c == a or c == b:
                 tix[i - lo] = -1
                 continue
-            while h < m and tv[h] < c:
-                h += 1
-            if h == m or tv[h] != c:
-                raise ValueError("sweep: a listed clique has a member outside the common neighbourhood")
+            h = np.int64(0)
+            n = m
+            while n > 1:  # branch-free: the step count depends on m only
+                half = n >> 1
+                h = h + half if tv[h + half] <= c else h
+                n -= half
+            bad |= tv[h] != c
             tix[i - lo] = h
             mem[h] = True
             if slot[h] < 0:
@@ -647,10 +663,14 @@ def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, 
                 base = nrow * m
                 for t in range(m):
                     links[base + t] = -1
-                nl = intersect_merge(nbr, np.int64(indptr[c]), np.int64(indptr[c + 1]), tv, _I0, m, outA, outB)
+                nl = intersect_merge(nbr, np.int64(indptr[c]), np.int64(indptr[c + 1]), tv, _I0, m, xs, outB)
                 for t in range(nl):
-                    links[base + outB[t]] = outA[t]
+                    links[base + outB[t]] = xs[t]
                 nrow += 1
+            outA[nr] = slot[h] * m
+            nr += 1
+        if bad:
+            raise ValueError("sweep: a listed clique has a member outside the common neighbourhood")
         # survivors: T less the members, bounded by their levels to a and b
         na = np.int64(0)
         for t in range(m):
@@ -664,11 +684,8 @@ def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, 
             x, val, na = _pop_highest(xs, ms, na)
             if val <= best:
                 break
-            for i in range(hi - lo):
-                ti = tix[i]
-                if ti < 0:
-                    continue
-                q = links[slot[ti] * m + x]
+            for r in range(nr):
+                q = links[outA[r] + x]
                 if q < 0:
                     val = -1
                     break
@@ -680,28 +697,35 @@ def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, 
         for i in range(hi - lo):
             if tix[i] >= 0:
                 mem[tix[i]] = False
-        for i in range(lo, hi - 1):
-            ci = nodes[i]
-            ti = tix[i - lo]
-            for j in range(i + 1, hi):
-                tj = tix[j - lo]
-                if ti < 0 and tj < 0:
-                    pe = e
-                elif ti < 0:
-                    pe = eid[posA[tj]] if ci == a else eid[posB[tj]]
-                elif tj < 0:
-                    pe = eid[posA[ti]] if nodes[j] == a else eid[posB[ti]]
-                else:
-                    q = links[slot[ti] * m + tj]
-                    if q < 0:
-                        raise ValueError("sweep: a listed clique has a member pair that is not an edge")
-                    pe = eid[q]
-                pairs[w] = pe
-                w += 1
+        s = hi - lo
+        for i in range(s - 1):
+            ti = tix[i]
+            if ti < 0:  # a or b: its pairs' positions are in posA or posB
+                pos = posA if nodes[lo + i] == a else posB
+                for j in range(i + 1, s):
+                    tj = tix[j]
+                    pairs[w] = e if tj < 0 else eid[pos[tj]]
+                    w += 1
+            else:
+                rb = slot[ti] * m
+                ea = eid[posA[ti]]
+                eb = eid[posB[ti]]
+                for j in range(i + 1, s):
+                    tj = tix[j]
+                    if tj < 0:
+                        pe = ea if nodes[lo + j] == a else eb
+                    else:
+                        q = links[rb + tj]
+                        bad |= q < 0
+                        pe = eid[max(q, 0)]
+                    pairs[w] = pe
+                    w += 1
+        if bad:
+            raise ValueError("sweep: a listed clique has a member pair that is not an edge")
     return w
 
 
-@numba.njit(nogil=True, cache=True)
+@_leaf
 def _range_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, nodes, k, xs, ms, tpos,
                      pairs, w):
     """``level_min`` and the member pairs' edge ids of clique ``k``, listed from edge
