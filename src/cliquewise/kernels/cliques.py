@@ -67,6 +67,7 @@ from cliquewise.kernels.localbk import (
     SMALL,
     SPLIT,
     TOO_MUCH_WORK,
+    ctz,
     grown,
     put_clique,
     solve_general,
@@ -96,7 +97,7 @@ _leaf = numba.njit(nogil=True, cache=True, _nrt=False)
 _I0 = np.int64(0)
 _I1 = np.int64(1)
 _I2 = np.int64(2)
-_TABLE_M = 128  # common neighbourhoods up to this size get a link table (_edge_ranges_and_pairs)
+_TABLE_M = 64  # common neighbourhoods up to this size (one word) get a link table (_edge_ranges_and_pairs)
 _AHEAD = 16  # edges between a prefetch of a row and its use (a row pointer: twice as far)
 
 
@@ -269,7 +270,7 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
     # the link table, member marks, merge outputs, the table itself
     tv = np.empty(64, np.int64)
     slot = np.empty(64, np.int64)
-    mem = np.zeros(64, np.bool_)
+    adj = np.empty(64, np.uint64)  # the link table's rows as bitsets over T (m <= 64)
     outA = np.empty(64, np.int64)
     outB = np.empty(64, np.int64)
     links = np.empty(table_m * table_m if ranges else 0, np.int64)
@@ -308,7 +309,6 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
                 tpos = np.empty(2 * need + 2, np.int64)
                 tv = np.empty(2 * need, np.int64)
                 slot = np.empty(2 * need, np.int64)
-                mem = np.zeros(2 * need, np.bool_)
                 outA = np.empty(2 * need, np.int64)
                 outB = np.empty(2 * need, np.int64)
         m, wk = _isect(nbr, alo, ahi, nbr, blo, bhi, posA, posB)
@@ -391,8 +391,8 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
                     pairs = grown(pairs, n_pairs)
                 if table:  # the members' links from one pass over each member's row
                     n_pairs = _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, np.int64(e), m, posA, posB,
-                                                     ptr, nodes, K0, K1, lmin, pairs, n_pairs, xs, ms, tpos,
-                                                     tv, slot, mem, outA, outB, links)
+                                                     ptr, nodes, K0, K1, lmin, pairs, n_pairs, xs, tpos,
+                                                     tv, slot, adj, outA, outB, links)
                 else:
                     for k in range(K0, K1):
                         lmin[k], n_pairs = _range_and_pairs(indptr, nbr, nlev, eid, a, b, np.int64(e), m, posA,
@@ -455,8 +455,8 @@ def sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
     """
     if not 0 <= _small <= SMALL:
         raise ValueError("_small must lie in [0, 64]")
-    if _table is not None and not 0 <= _table <= 4096:
-        raise ValueError("_table must lie in [0, 4096]")
+    if _table is not None and not 0 <= _table <= _TABLE_M:
+        raise ValueError(f"_table must lie in [0, {_TABLE_M}]")
     u = np.ascontiguousarray(u, np.int64)
     v = np.ascontiguousarray(v, np.int64)
     lev = np.ascontiguousarray(lev, np.int32)
@@ -491,7 +491,7 @@ def sweep_with_ranges(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None
     each edge's cliques right after the search, from the common neighbourhood it
     has just intersected, which costs less than the separate passes: by a table of
     the members' links to that neighbourhood when it has at most ``_table``
-    vertices (default 128; ``_edge_ranges_and_pairs``), else by binary searches
+    vertices (default and most 64; ``_edge_ranges_and_pairs``), else by binary searches
     in the members' rows (``_range_and_pairs``). ``_table`` is for tests.
     """
     return sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi, max_cliques, max_work,
@@ -619,31 +619,40 @@ def _best_survivor(indptr, nbr, nlev, nodes, lo, hi, skip1, skip2, xs, ms, na):
 
 @_leaf
 def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, nodes, K0, K1, lmin,
-                           pairs, w, xs, ms, tix, tv, slot, mem, outA, outB, links):
+                           pairs, w, xs, tix, tv, slot, adj, outA, outB, links):
     """``level_min`` and the member pairs' edge ids of cliques ``K0 .. K1 - 1``, all
     listed from edge ``e = (a, b)`` whose full common neighbourhood ``T`` is
-    ``nbr[posA[:m]]``: the values of :func:`_range_and_pairs`, by table lookups.
+    ``nbr[posA[:m]]`` with ``m <= 64``: the values of :func:`_range_and_pairs`, by
+    table lookups.
 
     Every member other than ``a`` and ``b`` lies in ``T``, and so does every vertex
     that could extend a clique. So one merge of each such member's row with ``T``
-    gives all it is asked about: ``links[r * m + t]`` is the CSR position of the
-    link from the member of table row ``r`` to ``T[t]`` (-1: none). ``tv`` holds
-    ``T`` and ``slot[t]`` the table row of ``T[t]`` (the caller sets all to -1:
-    none yet); a member met in several of the edge's cliques is merged once.
-    Pairs with ``a`` or ``b`` read their positions off ``posA``/``posB``. Returns
-    ``w`` + pairs written.
+    gives all it is asked about: ``adj[r]`` has bit ``t`` set when the member of
+    table row ``r`` is linked to ``T[t]``, and ``links[r * m + t]`` is then the
+    CSR position of that link (other entries are stale). ``tv`` holds ``T`` and
+    ``slot[t]`` the table row of ``T[t]`` (the caller sets all to -1: none yet);
+    a member met in several of the edge's cliques is merged once.
+
+    The vertices that extend a clique are the bits common to its members' rows (a
+    row never holds its own vertex, so the members drop out); each one's level is
+    the smallest over its links to ``a``, ``b`` and the members, and ``level_min``
+    is one more than the largest (0: none). Pairs with ``a`` or ``b`` read their
+    positions off ``posA``/``posB``. Returns ``w`` + pairs written.
 
     Per clique, ``tix[i]`` is member ``i``'s place in ``T`` (-1 for ``a`` and
-    ``b``), found by a branch-free binary search of the short sorted ``T``, and
-    ``outA`` holds the table offsets ``r * m`` of the members other than ``a``
-    and ``b`` (``xs``/``outB`` take a merge's output before they hold survivors).
+    ``b``), found by a branch-free binary search of the short sorted ``T``;
+    ``outA`` holds the table rows of the members other than ``a`` and ``b``
+    (``xs``/``outB`` take a merge's output).
     """
+    one = np.uint64(1)
+    everyone = np.uint64(0xFFFFFFFFFFFFFFFF) if m == 64 else (one << np.uint64(m)) - one
     nrow = np.int64(0)
     bad = False
     for k in range(K0, K1):
         lo = ptr[k]
         hi = ptr[k + 1]
         nr = np.int64(0)
+        common = everyone
         for i in range(lo, hi):  # each member's place in T (a and b: -1), and its table row
             c = nodes[i]
             if c == a or c == b:
@@ -657,46 +666,34 @@ def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, 
                 n -= half
             bad |= tv[h] != c
             tix[i - lo] = h
-            mem[h] = True
-            if slot[h] < 0:
-                slot[h] = nrow
-                base = nrow * m
-                for t in range(m):
-                    links[base + t] = -1
+            r = slot[h]
+            if r < 0:
+                r = nrow
+                slot[h] = r
+                base = r * m
                 nl = intersect_merge(nbr, np.int64(indptr[c]), np.int64(indptr[c + 1]), tv, _I0, m, xs, outB)
+                bits = np.uint64(0)
                 for t in range(nl):
                     links[base + outB[t]] = xs[t]
+                    bits |= one << np.uint64(outB[t])
+                adj[r] = bits
                 nrow += 1
-            outA[nr] = slot[h] * m
+            outA[nr] = r
+            common &= adj[r]
             nr += 1
         if bad:
             raise ValueError("sweep: a listed clique has a member outside the common neighbourhood")
-        # survivors: T less the members, bounded by their levels to a and b
-        na = np.int64(0)
-        for t in range(m):
-            if mem[t]:
-                continue
-            xs[na] = t
-            ms[na] = min(nlev[posA[t]], nlev[posB[t]])
-            na += 1
-        best = np.int64(-1)  # branch and bound, as in _best_survivor
-        while na > 0:
-            x, val, na = _pop_highest(xs, ms, na)
-            if val <= best:
-                break
+        best = np.int64(-1)
+        while common != np.uint64(0):  # the vertices adjacent to every member
+            x = np.int64(ctz(common))
+            common &= common - one
+            val = np.int64(min(nlev[posA[x]], nlev[posB[x]]))
             for r in range(nr):
-                q = links[outA[r] + x]
-                if q < 0:
-                    val = -1
-                    break
-                val = min(val, np.int64(nlev[q]))
                 if val <= best:
                     break
+                val = min(val, np.int64(nlev[links[outA[r] * m + x]]))
             best = max(best, val)
         lmin[k] = best + 1
-        for i in range(hi - lo):
-            if tix[i] >= 0:
-                mem[tix[i]] = False
         s = hi - lo
         for i in range(s - 1):
             ti = tix[i]
@@ -707,7 +704,9 @@ def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, 
                     pairs[w] = e if tj < 0 else eid[pos[tj]]
                     w += 1
             else:
-                rb = slot[ti] * m
+                r = slot[ti]
+                rb = r * m
+                row = adj[r]
                 ea = eid[posA[ti]]
                 eb = eid[posB[ti]]
                 for j in range(i + 1, s):
@@ -715,9 +714,8 @@ def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, 
                     if tj < 0:
                         pe = ea if nodes[lo + j] == a else eb
                     else:
-                        q = links[rb + tj]
-                        bad |= q < 0
-                        pe = eid[max(q, 0)]
+                        bad |= ((row >> np.uint64(tj)) & one) == np.uint64(0)
+                        pe = eid[links[rb + tj]]
                     pairs[w] = pe
                     w += 1
         if bad:

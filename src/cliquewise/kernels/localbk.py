@@ -90,6 +90,7 @@ __all__ = [
     "TOO_MUCH_WORK",
     "FULL",
     "put_clique",
+    "ctz",
     "grown",
     "solve_small",
     "solve_general",
@@ -151,6 +152,9 @@ def _ctz(typingctx, x):
         return builder.call(fn, [args[0], ir.Constant(ir.IntType(1), 0)])
 
     return sig, codegen
+
+
+ctz = _ctz  # for the sweep's link table in cliquewise.kernels.cliques
 
 
 @_leaf
