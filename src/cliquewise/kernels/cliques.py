@@ -335,11 +335,6 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
         W0 = cnt[2]
         pre[0] = a
         pre[1] = b
-        table = ranges and m <= table_m  # the cliques' ranges and pairs come from a link table on T
-        if table:
-            for t in range(m):
-                tv[t] = nbr[posA[t]]
-                slot[t] = -1
         if s == 0:
             put_clique(ptr, nodes, cnt, pre, _I2, max_cliques)
         elif p > 0 and s > split_at:
@@ -389,7 +384,10 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
                     need_pairs += sz * (sz - 1) // 2
                 while pairs.shape[0] < need_pairs:
                     pairs = grown(pairs, n_pairs)
-                if table:  # the members' links from one pass over each member's row
+                if m <= table_m:  # the members' links from one pass over each member's row
+                    for t in range(m):
+                        tv[t] = nbr[posA[t]]
+                        slot[t] = -1
                     n_pairs = _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, np.int64(e), m, posA, posB,
                                                      ptr, nodes, K0, K1, lmin, pairs, n_pairs, xs, tpos,
                                                      tv, slot, adj, outA, outB, links)
