@@ -471,6 +471,36 @@ def test_sweep_with_ranges_on_shipped_graphs(make, small, split):
         _check_ranges(n, u[order], v[order], lev[order], small=small, split=split, table=table)
 
 
+@pytest.mark.parametrize("common", [63, 64, 65])
+def test_sweep_with_ranges_at_the_link_table_size_limit(common):
+    # An edge (0, 1) of the top level whose ends share 63, 64 or 65 neighbours (the
+    # link table holds one machine word, 64), all joined to 0 and 1 at the top level
+    # and sparsely among themselves by a networkx random graph (gnp_random_graph) at
+    # random levels. The last shared neighbour is the only one that extends the
+    # clique {0, 1, 2}, below the top level. References: level_min_reference (plain
+    # Python) and a dict from node pair to edge id (_check_ranges).
+    last = common + 1
+    inner = nx.gnp_random_graph(common - 2, 0.08, seed=common)
+    rng = np.random.default_rng(common)
+    level = {(0, 1): 2}
+    level.update({(e, x): 2 for x in range(2, last + 1) for e in (0, 1)})
+    level.update({(a + 3, b + 3): int(rng.integers(0, 3)) for a, b in inner.edges()})
+    level[(2, last)] = 1
+    edges = sorted(level)
+    u = np.array([a for a, _ in edges], np.int64)
+    v = np.array([b for _, b in edges], np.int64)
+    lev = np.array([level[e] for e in edges], np.int32)
+    order = np.argsort(-lev, kind="stable")  # (0, 1) first
+    u, v, lev = u[order], v[order], lev[order]
+    csr = csr_from_edges(last + 1, u, v, lev)
+    assert np.intersect1d(csr[1][csr[0][0]:csr[0][1]], csr[1][csr[0][1]:csr[0][2]]).size == common
+    got = sweep_with_ranges(*csr, u, v, lev)
+    k = [i for i in range(len(got[0]) - 1) if got[1][got[0][i]:got[0][i + 1]].tolist() == [0, 1, 2]]
+    assert len(k) == 1 and got[5][k[0]] == 2  # maximal down to level 2; the last neighbour extends it at 1
+    for table in (None, 0):
+        _check_ranges(last + 1, u, v, lev, table=table)
+
+
 @pytest.mark.parametrize("small, split", [(64, 1024), (0, 0)])
 def test_sweep_with_ranges_where_its_buffers_grow(small, split):
     # A hub joined to everyone and a planted 80-clique in a networkx random graph

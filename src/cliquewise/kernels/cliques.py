@@ -267,7 +267,7 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
     ms = np.empty(128, np.int32)
     tpos = np.empty(66, np.int64)
     # for _edge_ranges_and_pairs: the common neighbourhood's ids, each one's row in
-    # the link table, member marks, merge outputs, the table itself
+    # the link table, the rows as bitsets, merge outputs, the table itself
     tv = np.empty(64, np.int64)
     slot = np.empty(64, np.int64)
     adj = np.empty(64, np.uint64)  # the link table's rows as bitsets over T (m <= 64)
