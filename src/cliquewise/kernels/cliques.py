@@ -662,7 +662,8 @@ def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, 
                 half = n >> 1
                 h = h + half if tv[h + half] <= c else h
                 n -= half
-            bad |= tv[h] != c
+            if m == 0 or tv[h] != c:
+                raise ValueError("sweep: a listed clique has a member outside the common neighbourhood")
             tix[i - lo] = h
             r = slot[h]
             if r < 0:
@@ -679,8 +680,6 @@ def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, 
             outA[nr] = r
             common &= adj[r]
             nr += 1
-        if bad:
-            raise ValueError("sweep: a listed clique has a member outside the common neighbourhood")
         best = np.int64(-1)
         while common != np.uint64(0):  # the vertices adjacent to every member
             x = np.int64(ctz(common))
@@ -712,8 +711,9 @@ def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, 
                     if tj < 0:
                         pe = ea if nodes[lo + j] == a else eb
                     else:
-                        bad |= ((row >> np.uint64(tj)) & one) == np.uint64(0)
-                        pe = eid[links[rb + tj]]
+                        linked = ((row >> np.uint64(tj)) & one) != np.uint64(0)
+                        bad |= not linked
+                        pe = eid[links[rb + tj] if linked else 0]  # (a stale entry is never read)
                     pairs[w] = pe
                     w += 1
         if bad:
