@@ -545,3 +545,19 @@ def test_npy_stream_append_file_equals_numpy_concatenate(tmp_path, monkeypatch, 
     want = np.concatenate([[100, 101]] + [a.astype(np.int64) for a in parts])
     np.testing.assert_array_equal(np.load(out), want)
     assert np.load(out).dtype == np.int64
+
+
+@pytest.mark.parametrize("size", [0, 1, 4095, 4096, 10_000, 3 * 4096 + 7])
+def test_file_checksum_is_zlibs_crc32_of_the_bytes(tmp_path, size):
+    # zlib.crc32 over the whole file in one call as reference (CRC-32 as in zip and
+    # gzip); a small chunk drives the loop through several reads and a partial last one
+    from zlib import crc32
+
+    from cliquewise.store import file_checksum
+
+    data = np.random.default_rng(size).integers(0, 256, size, dtype=np.uint8).tobytes()
+    p = tmp_path / "f.bin"
+    p.write_bytes(data)
+    want = f"crc32:{crc32(data):08x}"
+    assert file_checksum(p) == want
+    assert file_checksum(p, chunk=4096) == want
