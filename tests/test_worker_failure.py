@@ -129,6 +129,24 @@ def test_workers_that_keep_dying_stop_the_run_clearly_then_resume(job, tmp_path)
     assert_same_results(run_dir, ref)
 
 
+class _ClusterThatFailsToClose:
+    def close(self):
+        # what distributed's local cluster raised here once, while joining a worker
+        # process that was being restarted after dying
+        raise AssertionError("can only join a started process")
+
+
+def test_an_error_while_the_cluster_shuts_down_never_hides_the_runs_own_error(caplog):
+    eng = Engine(EngineSettings(progress=False))
+    eng._cluster = _ClusterThatFailsToClose()
+    with caplog.at_level("DEBUG", logger="cliquewise.engine"):
+        with pytest.raises(ValueError, match="the run's own error"):
+            with eng:
+                raise ValueError("the run's own error")
+    assert any("shutting down" in r.getMessage() and r.exc_info for r in caplog.records)
+    eng.close()  # and a close after a run that completed does not raise either
+
+
 def test_dask_log_lines_stay_quiet_in_a_fresh_process():
     # importing distributed (which happens inside Engine) sets its loggers to INFO;
     # a worker dying then printed dask's own traceback next to our one-line error

@@ -46,8 +46,10 @@ class EngineError(RuntimeError):
 
 
 def _quiet_dask_logs() -> None:
+    # tornado.application: errors in the callbacks of dask's event loop, such as a
+    # local cluster correcting its state while a dying worker is restarted
     for name in ("distributed", "distributed.worker", "distributed.scheduler", "distributed.nanny",
-                 "distributed.core", "distributed.http.proxy", "distributed.utils_perf"):
+                 "distributed.core", "distributed.http.proxy", "distributed.utils_perf", "tornado.application"):
         logging.getLogger(name).setLevel(_dask_log_level())
 
 
@@ -232,14 +234,26 @@ class Engine:
             return 0
 
     def close(self) -> None:
-        try:
-            if self.client is not None:
-                self.client.close()
-            if self._pool is not None:
-                self._pool.shutdown(wait=False)
-        finally:
-            if self._cluster is not None:
-                self._cluster.close()
+        """Shut the client, the thread pool and the local cluster down.
+
+        An error while they shut down (say a local cluster joining a worker
+        process that was being restarted after dying) is logged at debug level and
+        not raised: raised from the ``finally`` of a run, it would replace the
+        run's own error (such as the clear one for workers that keep dying), and
+        after a run that completed, the results are written whatever it says.
+        """
+        steps = []
+        if self.client is not None:
+            steps.append(self.client.close)
+        if self._pool is not None:
+            steps.append(lambda: self._pool.shutdown(wait=False))
+        if self._cluster is not None:
+            steps.append(self._cluster.close)
+        for step in steps:
+            try:
+                step()
+            except Exception:
+                logging.getLogger(__name__).debug("engine: error while shutting down", exc_info=True)
 
     def __enter__(self):
         return self

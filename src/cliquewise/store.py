@@ -571,18 +571,14 @@ class RunStore:
         return True
 
     @staticmethod
-    def unit_commit(work: Path, unit: str, files: Iterable[str], extra: dict | None = None,
-                    checksums: dict | None = None) -> None:
-        """Mark unit ``unit`` finished, recording its files' checksums (taken from
-        ``checksums`` when it holds a file's :func:`file_checksum`, say worked out
-        side by side by the engine, else computed here)."""
+    def unit_commit(work: Path, unit: str, files: Iterable[str], extra: dict | None = None) -> None:
+        """Mark unit ``unit`` finished, recording its files' checksums."""
         (work / "units").mkdir(exist_ok=True)
         fault_point(f"pre-unit:{unit}")  # the unit's files are written, its marker not yet
         info = {"files": {}, "extra": extra or {}}
-        known = checksums or {}
         for rel in files:
             p = work / rel
-            info["files"][rel] = {"bytes": p.stat().st_size, "checksum": known.get(rel) or file_checksum(p)}
+            info["files"][rel] = {"bytes": p.stat().st_size, "checksum": file_checksum(p)}
         write_json_atomic(work / "units" / f"{unit}.json", info, durable=False)
         fault_point(f"unit:{unit}")
 
