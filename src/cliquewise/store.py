@@ -86,7 +86,7 @@ def file_checksum(path: Path, chunk: int = 1 << 20) -> str:
     outputs are recomputed, never trusted.
     """
     crc = 0
-    buf = bytearray(chunk)  # read into one buffer: a fresh block per read costs as much as the CRC
+    buf = bytearray(chunk)  # one buffer for all reads, not a fresh block per read
     view = memoryview(buf)
     with open(path, "rb", buffering=0) as fh:
         while True:
