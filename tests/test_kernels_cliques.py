@@ -56,14 +56,18 @@ def clique_sets(ptr, nodes):
     return out
 
 
-def sweep_dict(n, u, v, lev, blocks=None, small=64, split=1024):
-    """Run the sweep (optionally over edge blocks) -> {frozenset: (lmin, lmax)}."""
+def sweep_dict(n, u, v, lev, blocks=None, small=64, split=1024, local=None):
+    """Run the sweep (optionally over edge blocks) -> {frozenset: (lmin, lmax)}.
+
+    ``local``: the largest first-end degree that takes the per-vertex path (None:
+    the default, 64; 0: every edge by the general path)."""
+    knobs = {} if local is None else {"_local": local}
     indptr, nbr, nlev, eid = csr_from_edges(n, u, v, lev)
     cuts = [0, len(u)] if blocks is None else blocks
     out = {}
     for lo, hi in zip(cuts[:-1], cuts[1:]):
         ptr, nodes, lmax, status, work = sweep_candidates(
-            indptr, nbr, nlev, eid, u, v, lev, lo, hi, _small=small, _split=split)
+            indptr, nbr, nlev, eid, u, v, lev, lo, hi, _small=small, _split=split, **knobs)
         assert status == 0
         lmin = level_min(indptr, nbr, nlev, ptr, nodes)
         np.testing.assert_array_equal(level_max_of(indptr, nbr, nlev, ptr, nodes), lmax)
@@ -172,12 +176,13 @@ def test_maximal_cliques_match_igraph():
 # ------------------------------------------------------------ the sweep
 @pytest.mark.parametrize("make", [nx.les_miserables_graph, nx.karate_club_graph])
 @pytest.mark.parametrize("small, split", PATHS)
-def test_sweep_matches_per_level_networkx_on_shipped_graphs(make, small, split):
+@pytest.mark.parametrize("local", [None, 0])
+def test_sweep_matches_per_level_networkx_on_shipped_graphs(make, small, split, local):
     # reference: networkx.find_cliques on every threshold graph of the weights
     # shipped with networkx (les_miserables_graph, karate_club_graph)
     n, u, v, w, lev = from_networkx(make())
     ref = candidates_reference(n, u, v, lev)
-    got = sweep_dict(n, u, v, lev, small=small, split=split)
+    got = sweep_dict(n, u, v, lev, small=small, split=split, local=local)
     assert got == ref
 
 
@@ -198,17 +203,17 @@ def test_level_max_is_the_smallest_edge_weight():
 
 
 @settings(max_examples=200, deadline=None)
-@given(weighted_graphs(), st.sampled_from(PATHS))
-def test_sweep_matches_per_level_networkx_on_random_graphs(graph, path):
+@given(weighted_graphs(), st.sampled_from(PATHS), st.sampled_from([None, 0, 4]))
+def test_sweep_matches_per_level_networkx_on_random_graphs(graph, path, local):
     # reference: networkx.find_cliques on every threshold graph
     n, u, v, lev, rng = graph
     ref = candidates_reference(n, u, v, lev)
-    got = sweep_dict(n, u, v, lev, small=path[0], split=path[1])
+    got = sweep_dict(n, u, v, lev, small=path[0], split=path[1], local=local)
     assert got == ref
     # the same set from several edge blocks, concatenated, without duplicates
     if len(u) > 1:
         cuts = sorted(set(rng.integers(0, len(u) + 1, 3).tolist()) | {0, len(u)})
-        got = sweep_dict(n, u, v, lev, blocks=cuts, small=path[0], split=path[1])
+        got = sweep_dict(n, u, v, lev, blocks=cuts, small=path[0], split=path[1], local=local)
         assert got == ref
 
 
@@ -436,12 +441,13 @@ def _pair_edges_reference(u, v, ptr, nodes):
     return np.array(out, np.int64)
 
 
-def _check_ranges(n, u, v, lev, small=64, split=1024, cuts=None, table=None):
+def _check_ranges(n, u, v, lev, small=64, split=1024, cuts=None, table=None, local=None):
     csr = csr_from_edges(n, u, v, lev)
     cuts = [0, len(u)] if cuts is None else cuts
+    knobs = {} if local is None else {"_local": local}
     for lo, hi in zip(cuts[:-1], cuts[1:]):
-        want = sweep_candidates(*csr, u, v, lev, lo, hi, _small=small, _split=split)
-        got = sweep_with_ranges(*csr, u, v, lev, lo, hi, _small=small, _split=split, _table=table)
+        want = sweep_candidates(*csr, u, v, lev, lo, hi, _small=small, _split=split, **knobs)
+        got = sweep_with_ranges(*csr, u, v, lev, lo, hi, _small=small, _split=split, _table=table, **knobs)
         for a, b in zip(want, got[:5]):
             np.testing.assert_array_equal(a, b)
         ptr, nodes = got[0], got[1]
@@ -452,13 +458,15 @@ def _check_ranges(n, u, v, lev, small=64, split=1024, cuts=None, table=None):
 
 
 @settings(max_examples=150, deadline=None)
-@given(weighted_graphs(), st.sampled_from(PATHS), st.sampled_from([None, 0, 3]))
-def test_sweep_with_ranges_gives_level_min_and_pair_edges_of_the_references(graph, path, table):
+@given(weighted_graphs(), st.sampled_from(PATHS), st.sampled_from([None, 0, 3]), st.sampled_from([None, 0, 4]))
+def test_sweep_with_ranges_gives_level_min_and_pair_edges_of_the_references(graph, path, table, local):
     # table: the link table for every edge (None: the default size), for none (0:
-    # binary searches in the members' rows), or for common neighbourhoods of <= 3
+    # binary searches in the members' rows), or for common neighbourhoods of <= 3;
+    # local: the per-vertex path for first ends of <= 64 (None), none (0) or <= 4
+    # neighbours
     n, u, v, lev, rng = graph
     cuts = sorted(set(rng.integers(0, len(u) + 1, 3).tolist()) | {0, len(u)})
-    _check_ranges(n, u, v, lev, small=path[0], split=path[1], cuts=cuts, table=table)
+    _check_ranges(n, u, v, lev, small=path[0], split=path[1], cuts=cuts, table=table, local=local)
 
 
 @pytest.mark.parametrize("make", [nx.les_miserables_graph, nx.karate_club_graph])
@@ -467,8 +475,9 @@ def test_sweep_with_ranges_on_shipped_graphs(make, small, split):
     # networkx's shipped weighted graphs (Les Miserables co-appearances; Zachary's karate club)
     n, u, v, w, lev = from_networkx(make())
     order = np.argsort(-lev, kind="stable")  # as the stage sweeps: high levels first
-    for table in (None, 0):  # with the link table, and by binary searches
-        _check_ranges(n, u[order], v[order], lev[order], small=small, split=split, table=table)
+    # the per-vertex path where it applies; else with the link table, or by binary searches
+    for table, local in ((None, None), (None, 0), (0, 0)):
+        _check_ranges(n, u[order], v[order], lev[order], small=small, split=split, table=table, local=local)
 
 
 @pytest.mark.parametrize("common", [63, 64, 65])
@@ -497,8 +506,8 @@ def test_sweep_with_ranges_at_the_link_table_size_limit(common):
     got = sweep_with_ranges(*csr, u, v, lev)
     k = [i for i in range(len(got[0]) - 1) if got[1][got[0][i]:got[0][i + 1]].tolist() == [0, 1, 2]]
     assert len(k) == 1 and got[5][k[0]] == 2  # maximal down to level 2; the last neighbour extends it at 1
-    for table in (None, 0):
-        _check_ranges(last + 1, u, v, lev, table=table)
+    for table, local in ((None, None), (None, 0), (0, 0)):  # vertex 0 has 64, 65 or 66 neighbours
+        _check_ranges(last + 1, u, v, lev, table=table, local=local)
 
 
 @pytest.mark.parametrize("small, split", [(64, 1024), (0, 0)])
@@ -527,3 +536,41 @@ def test_sweep_with_ranges_where_its_buffers_grow(small, split):
     assert len(ptr) - 1 > 5000 and np.diff(ptr).max() >= 80 and len(pairs) > 100_000
     np.testing.assert_array_equal(lmin, level_min(csr[0], csr[1], csr[2], ptr, nodes))
     np.testing.assert_array_equal(pairs, candidate_pairs(csr[0], csr[1], csr[3], ptr, nodes, len(u), _wide=True))
+
+
+def test_per_vertex_path_gives_the_general_paths_arrays():
+    # First ends on both sides of the per-vertex path's limit (64 neighbours): a
+    # networkx random graph (gnp_random_graph) with five hubs, edges in the edge
+    # store's (u, v) order as the stage sweeps them, in blocks that cut rows. The
+    # two paths must agree array for array (the work count aside), and the default
+    # one with the references of _check_ranges.
+    g = nx.gnp_random_graph(150, 0.25, seed=7)
+    rng = np.random.default_rng(7)
+    g.add_edges_from((h, int(x)) for h in range(5) for x in rng.choice(np.arange(5, 150), 70, replace=False))
+    e = sorted(g.edges())
+    u = np.array([a for a, _ in e], np.int64)
+    v = np.array([b for _, b in e], np.int64)
+    lev = rng.integers(0, 4, len(e)).astype(np.int32)
+    deg = np.bincount(np.concatenate([u, v]))
+    assert deg[:5].min() > 64 and (deg[5:] <= 64).all()
+    csr = csr_from_edges(150, u, v, lev)
+    cuts = [0, int(np.searchsorted(u, 3)) + 7, len(u) // 2, len(u)]
+    for lo, hi in zip(cuts[:-1], cuts[1:]):
+        general = sweep_with_ranges(*csr, u, v, lev, lo, hi, _local=0)
+        per_vertex = sweep_with_ranges(*csr, u, v, lev, lo, hi)
+        assert len(general[0]) > 100
+        for i, (a, b) in enumerate(zip(general, per_vertex)):
+            if i != 4:
+                np.testing.assert_array_equal(a, b)
+    _check_ranges(150, u, v, lev, cuts=cuts)
+
+
+def test_per_vertex_path_refuses_an_edge_missing_from_the_csr():
+    # a CSR built without edge (0, 1) but asked to sweep it: a clear error, not a
+    # read of another vertex's row (no outside reference: our own input check)
+    u = np.array([0, 0, 1], np.int64)
+    v = np.array([1, 2, 2], np.int64)
+    lev = np.zeros(3, np.int32)
+    csr = csr_from_edges(3, u[1:], v[1:], lev[1:])
+    with pytest.raises(ValueError, match="missing from the row"):
+        sweep_with_ranges(*csr, u, v, lev)

@@ -63,6 +63,7 @@ from cliquewise.kernels.localbk import (
     FULL,
     NO_LIMIT,
     OK,
+    SM_EARLY,
     SM_SIZE,
     SMALL,
     SPLIT,
@@ -70,6 +71,7 @@ from cliquewise.kernels.localbk import (
     ctz,
     grown,
     put_clique,
+    search_small,
     solve_general,
     solve_small,
     solve_split,
@@ -98,6 +100,7 @@ _I0 = np.int64(0)
 _I1 = np.int64(1)
 _I2 = np.int64(2)
 _TABLE_M = 64  # common neighbourhoods up to this size (one word) get a link table (_edge_ranges_and_pairs)
+_LOCAL_D = 64  # first ends with up to this many neighbours (one word) take the per-vertex path
 _AHEAD = 16  # edges between a prefetch of a row and its use (a row pointer: twice as far)
 
 
@@ -241,11 +244,218 @@ def maximal_cliques_reference(n, u, v):
 
 
 # --------------------------------------------------------------------------
+# the sweep's per-vertex path: the links among a vertex's neighbours, built once
+# --------------------------------------------------------------------------
+@_leaf
+def _local_build(indptr, nbr, nlev, eid, ia, d, ladj, lpos, outA, outB):
+    """The links among the ``d <= 64`` neighbours ``N = nbr[ia:ia + d]`` of a vertex:
+    ``ladj[j]`` has bit ``k`` set when ``N[j]`` and ``N[k]`` are joined, and
+    ``lpos[j * d + k]`` is then the CSR position of one entry of that edge (its
+    level and edge id are those of both entries; other table entries are stale).
+    One merge of the upper part of each neighbour's row with the later
+    neighbours. Returns the work (entries visited)."""
+    one = np.uint64(1)
+    for j in range(d):
+        ladj[j] = np.uint64(0)
+        prefetch(indptr, nbr[ia + j])
+    for j in range(d):  # all the rows' misses in flight at once
+        q = indptr[nbr[ia + j]]
+        prefetch(nbr, q)
+        prefetch(nlev, q)
+        prefetch(eid, q)
+        prefetch(eid, q + 8)
+    work = np.int64(0)
+    for j in range(d - 1):
+        x = nbr[ia + j]
+        lo = np.int64(indptr[x])
+        hi = np.int64(indptr[x + 1])
+        while lo < hi:  # the first entry above x, by bisection
+            mid = (lo + hi) >> 1
+            if nbr[mid] <= x:
+                lo = mid + 1
+            else:
+                hi = mid
+        hi = np.int64(indptr[x + 1])
+        nl = intersect_merge(nbr, lo, hi, nbr, ia + j + 1, ia + d, outA, outB)
+        work += hi - lo + d - j
+        bj = one << np.uint64(j)
+        rj = j * d
+        bits = np.uint64(0)
+        for t in range(nl):
+            k = outB[t] - ia
+            q = outA[t]
+            lpos[rj + k] = q
+            lpos[k * d + j] = q
+            bits |= one << np.uint64(k)
+            ladj[k] |= bj
+        ladj[j] |= bits
+    return work
+
+
+@_leaf
+def _local_edge(nbr, nlev, eid, ia, d, ladj, lpos, jb, a, b, l, e, S, sk, pk, ex, amap, Pglob, pre, sm,
+                cbuf, ptr, nodes, cnt, max_cliques, max_work):
+    """The search for edge ``e = (a, b)`` of level ``l``, ``b = nbr[ia + jb]``, from
+    the links among the neighbours of ``a`` (:func:`_local_build`): the same
+    cliques, in the same order, as the general path's ``solve_small``."""
+    one = np.uint64(1)
+    rb = jb * d
+    bits = ladj[jb]  # the full common neighbourhood of a and b, ascending
+    s = np.int64(0)
+    p = np.int64(0)
+    while bits != np.uint64(0):
+        k = np.int64(ctz(bits))
+        bits &= bits - one
+        pa = ia + k
+        la = nlev[pa]
+        if la < l:
+            continue
+        q = lpos[rb + k]
+        lb = nlev[q]
+        if lb < l:
+            continue
+        S[s] = nbr[pa]
+        sk[s] = k
+        x = (la == l and eid[pa] < e) or (lb == l and eid[q] < e)
+        ex[s] = x
+        p += np.int64(not x)
+        s += 1
+    pre[0] = a
+    pre[1] = b
+    if s == 0:
+        put_clique(ptr, nodes, cnt, pre, _I2, max_cliques)
+        return
+    if p == 0:
+        return
+    ip = np.int64(0)
+    ix = p
+    sbits = np.uint64(0)
+    for t in range(s):  # local ids: P first, then X, each ascending
+        k = sk[t]
+        sbits |= one << np.uint64(k)
+        if ex[t]:
+            amap[k] = ix
+            ix += 1
+        else:
+            amap[k] = ip
+            Pglob[ip] = S[t]
+            pk[ip] = k
+            ip += 1
+    for i in range(s):
+        sm[i] = np.uint64(0)
+    for i in range(p):
+        sm[SM_EARLY + i] = np.uint64(0)
+    work = np.int64(0)
+    for i in range(p):
+        ki = pk[i]
+        row = ladj[ki] & sbits
+        rk = ki * d
+        bi = one << np.uint64(i)
+        work += 1
+        while row != np.uint64(0):
+            k = np.int64(ctz(row))
+            row &= row - one
+            j = amap[k]
+            if j <= i:
+                continue
+            q = lpos[rk + k]
+            lv = nlev[q]
+            if lv < l:
+                continue
+            bj = one << np.uint64(j)
+            sm[i] |= bj
+            sm[j] |= bi
+            if j < p and lv == l and eid[q] < e:
+                sm[SM_EARLY + i] |= bj
+                sm[SM_EARLY + j] |= bi
+            work += 1
+    search_small(sm, p, s, _I1, Pglob, pre, _I2, cbuf, ptr, nodes, cnt, max_cliques, max_work, work)
+
+
+@_leaf
+def _local_ranges_and_pairs(nbr, nlev, eid, ia, d, ladj, lpos, jb, a, b, e, ptr, nodes, K0, K1, lmin, pairs,
+                            w, tix):
+    """:func:`_edge_ranges_and_pairs` on the per-vertex path: the members' links
+    are read off the links among the neighbours of ``a`` (every member other than
+    ``a`` and ``b``, and every vertex that could extend a clique, is one of them
+    and in the common neighbourhood ``ladj[jb]``). Returns ``w`` + pairs written."""
+    one = np.uint64(1)
+    T = ladj[jb]
+    rb = jb * d
+    bad = False
+    for k in range(K0, K1):
+        lo = ptr[k]
+        hi = ptr[k + 1]
+        common = T
+        for i in range(lo, hi):  # each member's place among a's neighbours (a and b: -1)
+            c = nodes[i]
+            if c == a or c == b:
+                tix[i - lo] = -1
+                continue
+            h = np.int64(0)
+            n = d
+            while n > 1:  # branch-free: the step count depends on d only
+                half = n >> 1
+                h = h + half if nbr[ia + h + half] <= c else h
+                n -= half
+            if nbr[ia + h] != c or ((T >> np.uint64(h)) & one) == np.uint64(0):
+                raise ValueError("sweep: a listed clique has a member outside the common neighbourhood")
+            tix[i - lo] = h
+            common &= ladj[h]
+        best = np.int64(-1)
+        while common != np.uint64(0):  # the vertices adjacent to every member
+            x = np.int64(ctz(common))
+            common &= common - one
+            val = np.int64(min(nlev[ia + x], nlev[lpos[rb + x]]))
+            for i in range(hi - lo):
+                if val <= best:
+                    break
+                h = tix[i]
+                if h >= 0:
+                    val = min(val, np.int64(nlev[lpos[h * d + x]]))
+            best = max(best, val)
+        lmin[k] = best + 1
+        s = hi - lo
+        for i in range(s - 1):
+            ti = tix[i]
+            if ti < 0:  # a or b
+                from_a = nodes[lo + i] == a
+                for j in range(i + 1, s):
+                    tj = tix[j]
+                    if tj < 0:
+                        pe = e
+                    elif from_a:
+                        pe = eid[ia + tj]
+                    else:
+                        pe = eid[lpos[rb + tj]]
+                    pairs[w] = pe
+                    w += 1
+            else:
+                row = ladj[ti]
+                ri = ti * d
+                ea = eid[ia + ti]
+                eb = eid[lpos[rb + ti]]
+                for j in range(i + 1, s):
+                    tj = tix[j]
+                    if tj < 0:
+                        pe = ea if nodes[lo + j] == a else eb
+                    else:
+                        linked = ((row >> np.uint64(tj)) & one) != np.uint64(0)
+                        bad |= not linked
+                        pe = eid[lpos[ri + tj] if linked else ia]  # (a stale entry is never read)
+                    pairs[w] = pe
+                    w += 1
+        if bad:
+            raise ValueError("sweep: a listed clique has a member pair that is not an edge")
+    return w
+
+
+# --------------------------------------------------------------------------
 # the level sweep
 # --------------------------------------------------------------------------
 @numba.njit(nogil=True, cache=True)
 def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
-                  max_cliques, max_work, small_max, split_at, ranges, table_m):
+                  max_cliques, max_work, small_max, split_at, ranges, table_m, local_max):
     sm = np.empty(SM_SIZE, np.uint64)
     inv = np.empty(SMALL, np.int64)
     cbuf = np.empty(SMALL + 3, np.int64)
@@ -277,6 +487,14 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
     lmin = np.empty(1024 if ranges else 0, np.int32)
     pairs = np.empty(4096 if ranges else 0, np.int64)
     n_pairs = np.int64(0)
+    # the per-vertex path (first ends of at most local_max <= 64 neighbours): the
+    # links among the neighbours of the current first end, built once for its edges
+    cur_a = np.int64(-1)
+    ladj = np.empty(64, np.uint64)
+    lpos = np.empty(64 * 64, np.int64)
+    sk = np.empty(64, np.int64)
+    pk = np.empty(64, np.int64)
+    amap = np.empty(64, np.int64)
     e = edge_lo
     while e < edge_hi:
         a = u[e]
@@ -293,74 +511,91 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
         l = np.int64(lev[e])
         alo = indptr[a]
         ahi = indptr[a + 1]
-        blo = indptr[b]
-        bhi = indptr[b + 1]
-        need = min(ahi - alo, bhi - blo)
-        if posA.shape[0] < need:
-            posA = np.empty(2 * need, np.int64)
-            posB = np.empty(2 * need, np.int64)
-            S = np.empty(2 * need, nbr.dtype)
-            ex = np.empty(2 * need, np.bool_)
-            lidx = np.empty(2 * need, np.int64)
-            Pglob = np.empty(2 * need, np.int64)
-            if ranges:
-                xs = np.empty(4 * need, np.int64)
-                ms = np.empty(4 * need, np.int32)
-                tpos = np.empty(2 * need + 2, np.int64)
-                tv = np.empty(2 * need, np.int64)
-                slot = np.empty(2 * need, np.int64)
-                outA = np.empty(2 * need, np.int64)
-                outB = np.empty(2 * need, np.int64)
-        m, wk = _isect(nbr, alo, ahi, nbr, blo, bhi, posA, posB)
-        cnt[2] += wk
-        # S = common neighbours in G_l; ex = joined to a or b by an earlier edge of
-        # level l (cliques through it are listed from that edge)
-        s = np.int64(0)
-        p = np.int64(0)
-        for t in range(m):
-            pa = posA[t]
-            pb = posB[t]
-            la = nlev[pa]
-            lb = nlev[pb]
-            if la < l or lb < l:
-                continue
-            S[s] = nbr[pa]
-            x = (la == l and eid[pa] < e) or (lb == l and eid[pb] < e)
-            ex[s] = x
-            if not x:
-                p += 1
-            s += 1
-        K0 = cnt[0]
-        N0 = cnt[1]
-        W0 = cnt[2]
-        pre[0] = a
-        pre[1] = b
-        if s == 0:
-            put_clique(ptr, nodes, cnt, pre, _I2, max_cliques)
-        elif p > 0 and s > split_at:
-            solve_split(indptr, nbr, nlev, eid, l, e, S, ex, s, a, b, sm, inv, cbuf,
-                         sposA, sposB, ptr, nodes, cnt, max_cliques, max_work,
-                         small_max)
-        elif p > 0:
-            ip = 0
-            ix = p
-            for t in range(s):
-                if ex[t]:
-                    lidx[t] = ix
-                    ix += 1
+        local = ahi - alo <= local_max
+        d = np.int64(ahi - alo)
+        m = np.int64(0)
+        jb = np.int64(0)
+        if local:
+            if a != cur_a:
+                cnt[2] += _local_build(indptr, nbr, nlev, eid, np.int64(alo), d, ladj, lpos, outA, outB)
+                cur_a = a
+            jb = position_in(nbr, np.int64(alo), np.int64(ahi), b) - alo
+            if jb < 0:
+                raise ValueError("sweep: an edge is missing from the row of its first end")
+            K0 = cnt[0]
+            N0 = cnt[1]
+            W0 = cnt[2]
+            _local_edge(nbr, nlev, eid, np.int64(alo), d, ladj, lpos, jb, a, b, l, np.int64(e), S, sk, pk, ex,
+                        amap, Pglob, pre, sm, cbuf, ptr, nodes, cnt, max_cliques, max_work)
+        else:  # the general path: intersect the rows of a and b
+            blo = indptr[b]
+            bhi = indptr[b + 1]
+            need = min(ahi - alo, bhi - blo)
+            if posA.shape[0] < need:
+                posA = np.empty(2 * need, np.int64)
+                posB = np.empty(2 * need, np.int64)
+                S = np.empty(2 * need, nbr.dtype)
+                ex = np.empty(2 * need, np.bool_)
+                lidx = np.empty(2 * need, np.int64)
+                Pglob = np.empty(2 * need, np.int64)
+                if ranges:
+                    xs = np.empty(4 * need, np.int64)
+                    ms = np.empty(4 * need, np.int32)
+                    tpos = np.empty(2 * need + 2, np.int64)
+                    tv = np.empty(2 * need, np.int64)
+                    slot = np.empty(2 * need, np.int64)
+                    outA = np.empty(2 * need, np.int64)
+                    outB = np.empty(2 * need, np.int64)
+            m, wk = _isect(nbr, alo, ahi, nbr, blo, bhi, posA, posB)
+            cnt[2] += wk
+            # S = common neighbours in G_l; ex = joined to a or b by an earlier edge of
+            # level l (cliques through it are listed from that edge)
+            s = np.int64(0)
+            p = np.int64(0)
+            for t in range(m):
+                pa = posA[t]
+                pb = posB[t]
+                la = nlev[pa]
+                lb = nlev[pb]
+                if la < l or lb < l:
+                    continue
+                S[s] = nbr[pa]
+                x = (la == l and eid[pa] < e) or (lb == l and eid[pb] < e)
+                ex[s] = x
+                if not x:
+                    p += 1
+                s += 1
+            K0 = cnt[0]
+            N0 = cnt[1]
+            W0 = cnt[2]
+            pre[0] = a
+            pre[1] = b
+            if s == 0:
+                put_clique(ptr, nodes, cnt, pre, _I2, max_cliques)
+            elif p > 0 and s > split_at:
+                solve_split(indptr, nbr, nlev, eid, l, e, S, ex, s, a, b, sm, inv, cbuf,
+                             sposA, sposB, ptr, nodes, cnt, max_cliques, max_work,
+                             small_max)
+            elif p > 0:
+                ip = 0
+                ix = p
+                for t in range(s):
+                    if ex[t]:
+                        lidx[t] = ix
+                        ix += 1
+                    else:
+                        lidx[t] = ip
+                        Pglob[ip] = S[t]
+                        ip += 1
+                if s <= small_max:
+                    solve_small(indptr, nbr, nlev, eid, _I1, l, e, S, _I0, s, lidx, Pglob,
+                                 Pglob, p, pre, _I2, sm, inv, cbuf, sposA, sposB, ptr,
+                                 nodes,
+                                 cnt, max_cliques, max_work)
                 else:
-                    lidx[t] = ip
-                    Pglob[ip] = S[t]
-                    ip += 1
-            if s <= small_max:
-                solve_small(indptr, nbr, nlev, eid, _I1, l, e, S, _I0, s, lidx, Pglob,
-                             Pglob, p, pre, _I2, sm, inv, cbuf, sposA, sposB, ptr,
-                             nodes,
-                             cnt, max_cliques, max_work)
-            else:
-                solve_general(indptr, nbr, nlev, eid, _I1, l, e, S, _I0, s, lidx,
-                               Pglob, Pglob, p, s - p, pre, _I2, ptr, nodes, cnt,
-                               max_cliques, max_work)
+                    solve_general(indptr, nbr, nlev, eid, _I1, l, e, S, _I0, s, lidx,
+                                   Pglob, Pglob, p, s - p, pre, _I2, ptr, nodes, cnt,
+                                   max_cliques, max_work)
         if cnt[3] == FULL:
             cnt[0] = K0
             cnt[1] = N0
@@ -384,7 +619,10 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
                     need_pairs += sz * (sz - 1) // 2
                 while pairs.shape[0] < need_pairs:
                     pairs = grown(pairs, n_pairs)
-                if m <= table_m:  # the members' links from one pass over each member's row
+                if local:
+                    n_pairs = _local_ranges_and_pairs(nbr, nlev, eid, np.int64(alo), d, ladj, lpos, jb, a, b,
+                                                      np.int64(e), ptr, nodes, K0, K1, lmin, pairs, n_pairs, tpos)
+                elif m <= table_m:  # the members' links from one pass over each member's row
                     for t in range(m):
                         tv[t] = nbr[posA[t]]
                         slot[t] = -1
@@ -409,7 +647,7 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
 
 def sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
                      max_cliques=None, max_work=None, *, _small=SMALL, _split=SPLIT, _ranges=False,
-                     _table=None):
+                     _table=None, _local=_LOCAL_D):
     """Candidate cliques first seen at the level of each edge in a block.
 
     For every edge ``e`` in ``[edge_lo, edge_hi)`` (indices into ``u``/``v``/``lev``)
@@ -455,6 +693,8 @@ def sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
         raise ValueError("_small must lie in [0, 64]")
     if _table is not None and not 0 <= _table <= _TABLE_M:
         raise ValueError(f"_table must lie in [0, {_TABLE_M}]")
+    if not 0 <= _local <= _LOCAL_D:
+        raise ValueError(f"_local must lie in [0, {_LOCAL_D}]")
     u = np.ascontiguousarray(u, np.int64)
     v = np.ascontiguousarray(v, np.int64)
     lev = np.ascontiguousarray(lev, np.int32)
@@ -472,14 +712,16 @@ def sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
     ptr, nodes, lvl, status, work, lmin, pairs = _sweep_kernel(
         np.asarray(indptr, np.int64), nbr, nlev, eid, u, v, lev,
         np.int64(edge_lo), np.int64(edge_hi), mc, mw, np.int64(_small),
-        np.int64(_split), bool(_ranges), np.int64(_TABLE_M if _table is None else _table))
+        np.int64(_split), bool(_ranges), np.int64(_TABLE_M if _table is None else _table),
+        np.int64(min(_local, _small, _split)))
     if _ranges:
         return ptr, nodes, lvl, int(status), int(work), lmin, pairs
     return ptr, nodes, lvl, int(status), int(work)
 
 
 def sweep_with_ranges(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
-                      max_cliques=None, max_work=None, *, _small=SMALL, _split=SPLIT, _table=None):
+                      max_cliques=None, max_work=None, *, _small=SMALL, _split=SPLIT, _table=None,
+                      _local=_LOCAL_D):
     """:func:`sweep_candidates`, also returning each clique's :func:`level_min` and the
     edge ids of its member pairs as
     :func:`cliquewise.kernels.incidence.candidate_pairs` gives them (int64).
@@ -493,7 +735,7 @@ def sweep_with_ranges(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None
     in the members' rows (``_range_and_pairs``). ``_table`` is for tests.
     """
     return sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi, max_cliques, max_work,
-                            _small=_small, _split=_split, _ranges=True, _table=_table)
+                            _small=_small, _split=_split, _ranges=True, _table=_table, _local=_local)
 
 
 

@@ -93,6 +93,8 @@ __all__ = [
     "ctz",
     "grown",
     "solve_small",
+    "search_small",
+    "SM_EARLY",
     "solve_general",
     "solve_split",
 ]
@@ -221,6 +223,7 @@ def _emit(ptr, nodes, cnt, pre, npre, Pglob, rbits, rlo, nwords, cbuf, max_cliqu
 
 # one-word scratch ``sm``: adjacency rows, early rows, stacks of P, X, branch sets
 _SM_EARLY = 64
+SM_EARLY = _SM_EARLY  # for the sweep's per-vertex path in cliquewise.kernels.cliques
 _SM_P = 128
 _SM_X = _SM_P + 66
 _SM_T = _SM_X + 66
@@ -287,6 +290,15 @@ def solve_small(indptr, nbr, nlev, eid, levelled, l, ecut, U, ulo, uhi, lidx,
             if j < p and levelled != 0 and nlev[pa] == l and eid[pa] < ecut:
                 sm[_SM_EARLY + i] |= bj
                 sm[_SM_EARLY + j] |= bi
+    search_small(sm, p, s, levelled, Pglob, pre, npre, cbuf, ptr, nodes, cnt, max_cliques, max_work, work)
+
+
+@_leaf
+def search_small(sm, p, s, levelled, Pglob, pre, npre, cbuf, ptr, nodes, cnt, max_cliques, max_work, work):
+    """The search of :func:`solve_small` once ``sm`` holds the adjacency rows
+    (``sm[i]`` for the ``s`` local ids, ``P`` first; ``X``-``X`` bits may be left
+    out) and, with ``levelled``, the early rows ``sm[_SM_EARLY + i]`` of ``P``.
+    Adds ``work`` and its own to ``cnt[2]``."""
     pall = _ALL if p == 64 else (_ONE << np.uint64(p)) - _ONE
     uall = _ALL if s == 64 else (_ONE << np.uint64(s)) - _ONE
     sm[_SM_P] = pall
