@@ -293,17 +293,20 @@ def _local_build(indptr, nbr, nlev, eid, ia, d, ladj, lpos, outA, outB):
 
 
 @_leaf
-def _local_edge(nbr, nlev, eid, ia, d, ladj, lpos, jb, a, b, l, e, S, sk, pk, ex, amap, Pglob, pre, sm,
-                cbuf, ptr, nodes, cnt, max_cliques, max_work):
+def _local_edge(nbr, nlev, eid, ia, d, ladj, lpos, lglob, jb, a, b, l, e, pre, sm, cbuf, ptr, nodes, cnt,
+                max_cliques, max_work, rout):
     """The search for edge ``e = (a, b)`` of level ``l``, ``b = nbr[ia + jb]``, from
-    the links among the neighbours of ``a`` (:func:`_local_build`): the same
-    cliques, in the same order, as the general path's ``solve_small``."""
+    the links among the neighbours of ``a`` (:func:`_local_build`), with a's
+    neighbour indices as local ids (``lglob[k] = nbr[ia + k]``): the same cliques,
+    in the same order, as the general path's ``solve_small``. ``rout[k]`` takes
+    the local ids of clique ``k``'s members other than ``a`` and ``b``."""
     one = np.uint64(1)
+    zero = np.uint64(0)
     rb = jb * d
-    bits = ladj[jb]  # the full common neighbourhood of a and b, ascending
-    s = np.int64(0)
-    p = np.int64(0)
-    while bits != np.uint64(0):
+    bits = ladj[jb]  # the full common neighbourhood of a and b
+    sbits = zero  # S: the part in G_l
+    xbits = zero  # joined to a or b by an earlier edge of level l (cliques through it are listed from there)
+    while bits != zero:
         k = np.int64(ctz(bits))
         bits &= bits - one
         pa = ia + k
@@ -314,67 +317,54 @@ def _local_edge(nbr, nlev, eid, ia, d, ladj, lpos, jb, a, b, l, e, S, sk, pk, ex
         lb = nlev[q]
         if lb < l:
             continue
-        S[s] = nbr[pa]
-        sk[s] = k
-        x = (la == l and eid[pa] < e) or (lb == l and eid[q] < e)
-        ex[s] = x
-        p += np.int64(not x)
-        s += 1
+        bk = one << np.uint64(k)
+        sbits |= bk
+        if (la == l and eid[pa] < e) or (lb == l and eid[q] < e):
+            xbits |= bk
     pre[0] = a
     pre[1] = b
-    if s == 0:
+    if sbits == zero:
         put_clique(ptr, nodes, cnt, pre, _I2, max_cliques)
         return
-    if p == 0:
+    pbits = sbits & ~xbits
+    if pbits == zero:
         return
-    ip = np.int64(0)
-    ix = p
-    sbits = np.uint64(0)
-    for t in range(s):  # local ids: P first, then X, each ascending
-        k = sk[t]
-        sbits |= one << np.uint64(k)
-        if ex[t]:
-            amap[k] = ix
-            ix += 1
-        else:
-            amap[k] = ip
-            Pglob[ip] = S[t]
-            pk[ip] = k
-            ip += 1
-    for i in range(s):
-        sm[i] = np.uint64(0)
-    for i in range(p):
-        sm[SM_EARLY + i] = np.uint64(0)
+    rest = sbits
+    while rest != zero:
+        k = np.int64(ctz(rest))
+        rest &= rest - one
+        sm[k] = zero
+        sm[SM_EARLY + k] = zero
     work = np.int64(0)
-    for i in range(p):
-        ki = pk[i]
-        row = ladj[ki] & sbits
-        rk = ki * d
-        bi = one << np.uint64(i)
+    rest = sbits
+    while rest != zero:  # the links within S in G_l, each pair once; early ones marked
+        k = np.int64(ctz(rest))
+        rest &= rest - one
+        row = ladj[k] & rest
+        rk = k * d
+        bk = one << np.uint64(k)
         work += 1
-        while row != np.uint64(0):
-            k = np.int64(ctz(row))
+        while row != zero:
+            k2 = np.int64(ctz(row))
             row &= row - one
-            j = amap[k]
-            if j <= i:
-                continue
-            q = lpos[rk + k]
+            q = lpos[rk + k2]
             lv = nlev[q]
             if lv < l:
                 continue
-            bj = one << np.uint64(j)
-            sm[i] |= bj
-            sm[j] |= bi
-            if j < p and lv == l and eid[q] < e:
-                sm[SM_EARLY + i] |= bj
-                sm[SM_EARLY + j] |= bi
+            b2 = one << np.uint64(k2)
+            sm[k] |= b2
+            sm[k2] |= bk
+            if lv == l and eid[q] < e:
+                sm[SM_EARLY + k] |= b2
+                sm[SM_EARLY + k2] |= bk
             work += 1
-    search_small(sm, p, s, _I1, Pglob, pre, _I2, cbuf, ptr, nodes, cnt, max_cliques, max_work, work)
+    search_small(sm, pbits, xbits, _I1, lglob, pre, _I2, cbuf, ptr, nodes, cnt, max_cliques, max_work, work,
+                 True, rout)
 
 
 @_leaf
 def _local_ranges_and_pairs(nbr, nlev, eid, ia, d, ladj, lpos, jb, a, b, e, ptr, nodes, K0, K1, lmin, pairs,
-                            w, tix):
+                            w, tix, rout):
     """:func:`_edge_ranges_and_pairs` on the per-vertex path: the members' links
     are read off the links among the neighbours of ``a`` (every member other than
     ``a`` and ``b``, and every vertex that could extend a clique, is one of them
@@ -387,19 +377,14 @@ def _local_ranges_and_pairs(nbr, nlev, eid, ia, d, ladj, lpos, jb, a, b, e, ptr,
         lo = ptr[k]
         hi = ptr[k + 1]
         common = T
-        for i in range(lo, hi):  # each member's place among a's neighbours (a and b: -1)
+        r = rout[k]
+        for i in range(lo, hi):  # each member's local id, in member order (a and b: -1)
             c = nodes[i]
             if c == a or c == b:
                 tix[i - lo] = -1
                 continue
-            h = np.int64(0)
-            n = d
-            while n > 1:  # branch-free: the step count depends on d only
-                half = n >> 1
-                h = h + half if nbr[ia + h + half] <= c else h
-                n -= half
-            if nbr[ia + h] != c or ((T >> np.uint64(h)) & one) == np.uint64(0):
-                raise ValueError("sweep: a listed clique has a member outside the common neighbourhood")
+            h = np.int64(ctz(r))
+            r &= r - one
             tix[i - lo] = h
             common &= ladj[h]
         best = np.int64(-1)
@@ -492,9 +477,8 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
     cur_a = np.int64(-1)
     ladj = np.empty(64, np.uint64)
     lpos = np.empty(64 * 64, np.int64)
-    sk = np.empty(64, np.int64)
-    pk = np.empty(64, np.int64)
-    amap = np.empty(64, np.int64)
+    lglob = np.empty(64, np.int64)
+    rout = np.empty(ptr.shape[0], np.uint64)  # each clique's members as local ids (per-vertex path)
     e = edge_lo
     while e < edge_hi:
         a = u[e]
@@ -518,6 +502,8 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
         if local:
             if a != cur_a:
                 cnt[2] += _local_build(indptr, nbr, nlev, eid, np.int64(alo), d, ladj, lpos, outA, outB)
+                for k in range(d):
+                    lglob[k] = nbr[alo + k]
                 cur_a = a
             jb = position_in(nbr, np.int64(alo), np.int64(ahi), b) - alo
             if jb < 0:
@@ -525,8 +511,8 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
             K0 = cnt[0]
             N0 = cnt[1]
             W0 = cnt[2]
-            _local_edge(nbr, nlev, eid, np.int64(alo), d, ladj, lpos, jb, a, b, l, np.int64(e), S, sk, pk, ex,
-                        amap, Pglob, pre, sm, cbuf, ptr, nodes, cnt, max_cliques, max_work)
+            _local_edge(nbr, nlev, eid, np.int64(alo), d, ladj, lpos, lglob, jb, a, b, l, np.int64(e), pre, sm,
+                        cbuf, ptr, nodes, cnt, max_cliques, max_work, rout)
         else:  # the general path: intersect the rows of a and b
             blo = indptr[b]
             bhi = indptr[b + 1]
@@ -603,6 +589,7 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
             cnt[3] = OK
             ptr = grown(ptr, K0 + 1)
             nodes = grown(nodes, N0)
+            rout = grown(rout, K0)  # as long as ptr
             continue  # redo edge e with room to spare
         K1 = cnt[0]
         if K1 > K0:
@@ -621,7 +608,8 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
                     pairs = grown(pairs, n_pairs)
                 if local:
                     n_pairs = _local_ranges_and_pairs(nbr, nlev, eid, np.int64(alo), d, ladj, lpos, jb, a, b,
-                                                      np.int64(e), ptr, nodes, K0, K1, lmin, pairs, n_pairs, tpos)
+                                                      np.int64(e), ptr, nodes, K0, K1, lmin, pairs, n_pairs, tpos,
+                                                      rout)
                 elif m <= table_m:  # the members' links from one pass over each member's row
                     for t in range(m):
                         tv[t] = nbr[posA[t]]

@@ -290,19 +290,26 @@ def solve_small(indptr, nbr, nlev, eid, levelled, l, ecut, U, ulo, uhi, lidx,
             if j < p and levelled != 0 and nlev[pa] == l and eid[pa] < ecut:
                 sm[_SM_EARLY + i] |= bj
                 sm[_SM_EARLY + j] |= bi
-    search_small(sm, p, s, levelled, Pglob, pre, npre, cbuf, ptr, nodes, cnt, max_cliques, max_work, work)
+    pall = _ALL if p == 64 else (_ONE << np.uint64(p)) - _ONE
+    uall = _ALL if s == 64 else (_ONE << np.uint64(s)) - _ONE
+    search_small(sm, pall, uall & ~pall, levelled, Pglob, pre, npre, cbuf, ptr, nodes, cnt, max_cliques,
+                 max_work, work, False, sm)
 
 
 @_leaf
-def search_small(sm, p, s, levelled, Pglob, pre, npre, cbuf, ptr, nodes, cnt, max_cliques, max_work, work):
+def search_small(sm, pall, xall, levelled, Pglob, pre, npre, cbuf, ptr, nodes, cnt, max_cliques, max_work,
+                 work, keep_r, rout):
     """The search of :func:`solve_small` once ``sm`` holds the adjacency rows
-    (``sm[i]`` for the ``s`` local ids, ``P`` first; ``X``-``X`` bits may be left
-    out) and, with ``levelled``, the early rows ``sm[_SM_EARLY + i]`` of ``P``.
-    Adds ``work`` and its own to ``cnt[2]``."""
-    pall = _ALL if p == 64 else (_ONE << np.uint64(p)) - _ONE
-    uall = _ALL if s == 64 else (_ONE << np.uint64(s)) - _ONE
+    (``sm[i]`` for the local ids ``i`` in the bitsets ``pall`` (``P``) and ``xall``
+    (``X``); ``X``-``X`` bits may be left out) and, with ``levelled``, the early
+    rows ``sm[_SM_EARLY + i]`` of ``P``. Clique members are ``Pglob[i]``. The pivot
+    is the first best among the vertices of ``pall`` then those of ``xall``, each
+    in ascending id, so the output does not depend on how the ids of the two
+    interleave. Adds ``work`` and its own to ``cnt[2]``. With ``keep_r``, clique
+    ``k`` found here also leaves its local ids (less ``pre``) as the bitset
+    ``rout[k]`` (``rout`` as long as ``ptr``)."""
     sm[_SM_P] = pall
-    sm[_SM_X] = uall & ~pall
+    sm[_SM_X] = xall
     sm[_SM_R] = _ZERO
     d = 0
     fresh = True  # frame d still needs its pivot
@@ -312,13 +319,19 @@ def search_small(sm, p, s, levelled, Pglob, pre, npre, cbuf, ptr, nodes, cnt, ma
             P = sm[_SM_P + d]
             X = sm[_SM_X + d]
             npc = _popc(P)
-            bits = P | X
-            work += np.int64(_popc(bits)) + 1
+            work += np.int64(_popc(P | X)) + 1
             best = _ZERO
             brow = _ZERO
             prune = False
             first = True
-            while bits != _ZERO:
+            bits = (P | X) & pall  # first the vertices of the top frame's P, then of its X
+            rest = (P | X) & xall
+            while True:
+                if bits == _ZERO:
+                    if rest == _ZERO:
+                        break
+                    bits = rest
+                    rest = _ZERO
                 t = _ctz(bits)
                 bits &= bits - _ONE
                 row = sm[np.int64(t)]
@@ -362,6 +375,8 @@ def search_small(sm, p, s, levelled, Pglob, pre, npre, cbuf, ptr, nodes, cnt, ma
                       cbuf, max_cliques)
                 if cnt[3] != OK:
                     break
+                if keep_r:
+                    rout[cnt[0] - 1] = nR
         else:
             d += 1
             sm[_SM_P + d] = nP
