@@ -247,6 +247,21 @@ def maximal_cliques_reference(n, u, v):
 # the sweep's per-vertex path: the links among a vertex's neighbours, built once
 # --------------------------------------------------------------------------
 @_leaf
+def _prefetch_neighbour_rows(indptr, nbr, nlev, eid, lo, hi):
+    """Ask for the rows (``nbr`` and ``nlev``, whole; ``eid``, the first lines) of
+    the vertices ``nbr[lo:hi]``: all their misses in flight at once."""
+    for j in range(lo, hi):
+        x = nbr[j]
+        q0 = np.int64(indptr[x])
+        q1 = np.int64(indptr[x + 1])
+        for q in range(q0, q1, 16):
+            prefetch(nbr, q)
+            prefetch(nlev, q)
+        prefetch(eid, q0)
+        prefetch(eid, q0 + 8)
+
+
+@_leaf
 def _local_build(indptr, nbr, nlev, eid, ia, d, ladj, lpos, outA, outB):
     """The links among the ``d <= 64`` neighbours ``N = nbr[ia:ia + d]`` of a vertex:
     ``ladj[j]`` has bit ``k`` set when ``N[j]`` and ``N[k]`` are joined, and
@@ -258,12 +273,7 @@ def _local_build(indptr, nbr, nlev, eid, ia, d, ladj, lpos, outA, outB):
     for j in range(d):
         ladj[j] = np.uint64(0)
         prefetch(indptr, nbr[ia + j])
-    for j in range(d):  # all the rows' misses in flight at once
-        q = indptr[nbr[ia + j]]
-        prefetch(nbr, q)
-        prefetch(nlev, q)
-        prefetch(eid, q)
-        prefetch(eid, q + 8)
+    _prefetch_neighbour_rows(indptr, nbr, nlev, eid, ia, ia + d)
     work = np.int64(0)
     for j in range(d - 1):
         x = nbr[ia + j]
@@ -475,6 +485,8 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
     # the per-vertex path (first ends of at most local_max <= 64 neighbours): the
     # links among the neighbours of the current first end, built once for its edges
     cur_a = np.int64(-1)
+    pf_ptr = np.int64(-1)  # the last first ends whose neighbours' row pointers, and rows, were asked for
+    pf_row = np.int64(-1)
     ladj = np.empty(64, np.uint64)
     lpos = np.empty(64 * 64, np.int64)
     lglob = np.empty(64, np.int64)
@@ -492,6 +504,18 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
             q = indptr[v[e + _AHEAD]]
             prefetch(nbr, q)
             prefetch(nlev, q)
+        # and for the per-vertex path, the rows of the neighbours of the first ends
+        # to come (their row pointers first)
+        if e + 2 * _AHEAD < edge_hi and u[e + 2 * _AHEAD] != pf_ptr:
+            pf_ptr = u[e + 2 * _AHEAD]
+            if indptr[pf_ptr + 1] - indptr[pf_ptr] <= local_max:
+                for q in range(indptr[pf_ptr], indptr[pf_ptr + 1]):
+                    prefetch(indptr, nbr[q])
+        if e + _AHEAD < edge_hi and u[e + _AHEAD] != pf_row:
+            pf_row = u[e + _AHEAD]
+            if indptr[pf_row + 1] - indptr[pf_row] <= local_max:
+                _prefetch_neighbour_rows(indptr, nbr, nlev, eid, np.int64(indptr[pf_row]),
+                                         np.int64(indptr[pf_row + 1]))
         l = np.int64(lev[e])
         alo = indptr[a]
         ahi = indptr[a + 1]
