@@ -220,3 +220,31 @@ def test_memory_limited_run_equals_the_unconstrained_run(tmp_path):
     for name in ("mu", "mu_full"):
         np.testing.assert_array_equal(load_npy(tmp_path / "limited" / "fit" / f"{name}.npy"),
                                       load_npy(tmp_path / "free" / "fit" / f"{name}.npy"))
+
+
+@settings(max_examples=60, deadline=None)
+@given(w=st.lists(st.one_of(st.integers(-5, 40).map(float), st.floats(-3, 50, allow_nan=False)), min_size=1,
+                  max_size=200),
+       spec=st.one_of(st.just("all"), st.integers(1, 12)))
+def test_level_lookup_equals_numpy_searchsorted(w, spec):
+    # reference: numpy.searchsorted (the highest threshold at or below each weight),
+    # for integer weights (the table) and for any weights (binary search)
+    w = np.array(w, np.float64)
+    levels = parts.choose_levels(w, spec)
+    want = np.searchsorted(levels, w, side="right") - 1
+    got = parts.level_lookup(np.unique(w), levels)(w)
+    assert got.dtype == np.int32
+    np.testing.assert_array_equal(got, want)
+    ints = np.floor(w)
+    levels = parts.choose_levels(ints, spec)
+    np.testing.assert_array_equal(parts.level_lookup(np.unique(ints), levels)(ints),
+                                  np.searchsorted(levels, ints, side="right") - 1)
+
+
+def test_level_lookup_of_a_wide_integer_span_searches():
+    # integers further apart than the table's span: binary search, same answer
+    # (reference: numpy.searchsorted)
+    w = np.array([1.0, 5.0, float(parts.TABLE_SPAN) * 3, 7.0])
+    levels = parts.choose_levels(w, "all")
+    np.testing.assert_array_equal(parts.level_lookup(np.unique(w), levels)(w),
+                                  np.searchsorted(levels, w, side="right") - 1)

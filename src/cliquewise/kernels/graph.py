@@ -20,7 +20,9 @@ linear-time smallest-last order behind ``cliques.degeneracy_order`` and the
 clique searches. :func:`prefetch_member_rows` asks the CPU early for the CSR rows
 of the members of a vertex set a few sets ahead, for the kernels that walk a long
 list of small sets (``level_min``, ``incidence``), whose rows lie at random places
-in memory. ``*_reference`` are the scipy / numpy twins used in tests.
+in memory. :func:`levels_from_table` gives each edge its level from a table over
+the span of integer weights. ``*_reference`` are the scipy / numpy twins used in
+tests.
 """
 
 import numba
@@ -150,6 +152,16 @@ def csr_from_edges(n, u, v, lev, nbr_dtype=None):
     eid = np.empty(m2, np.int64)
     _csr_fill(n, u, v, lev, indptr, nbr, nlev, eid)
     return indptr, nbr, nlev, eid
+
+
+@numba.njit(nogil=True, cache=True)
+def levels_from_table(w, low, table):
+    """``table[w - low]`` for integer-valued weights ``w`` (int32): each edge's level
+    from a table over the weights' span (see ``parts.candidates.level_lookup``)."""
+    out = np.empty(w.shape[0], np.int32)
+    for i in range(w.shape[0]):
+        out[i] = table[np.int64(w[i] - low)]
+    return out
 
 
 @numba.njit(nogil=True, cache=True)

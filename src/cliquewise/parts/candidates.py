@@ -5,7 +5,8 @@
   threshold at or below its weight.
 * :func:`build_graph` reads the edge store and writes the symmetric CSR (with per
   entry level and edge index) as ``.npy`` files that every unit memory-maps
-  (:func:`prepare_graph`, then :func:`csr_range` per range of rows).
+  (:func:`graph_columns` for the edge ends and for the weights, :func:`prepare_graph`,
+  then :func:`csr_range` per range of rows).
 * :func:`enumerate_unit` lists the candidates first seen at the edges of one edge
   block (the high-to-low sweep, see ``kernels/cliques.py``), under the blow-up
   budget (clique count, work, seconds), and their ``level_min``.
@@ -26,6 +27,7 @@ import numpy as np
 import pyarrow.parquet as pq
 
 from cliquewise.kernels.cliques import sweep_with_ranges
+from cliquewise.kernels.graph import levels_from_table
 from cliquewise.kernels.incidence import (
     candidate_pairs,
     count_buckets,
@@ -88,6 +90,22 @@ def level_index(weights: np.ndarray, levels: np.ndarray) -> np.ndarray:
     return (np.searchsorted(levels, weights, side="right") - 1).astype(np.int32)
 
 
+TABLE_SPAN = 1 << 20  # integer weights spanning at most this many values get their levels from a table
+
+
+def level_lookup(values: np.ndarray, levels: np.ndarray):
+    """:func:`level_index` for weights among ``values`` (the distinct weights,
+    ascending): when they are integers within :data:`TABLE_SPAN` of each other (the
+    usual interaction counts), by a table with one entry per integer of their span,
+    looked up in one pass; else by binary search."""
+    values = np.asarray(values, np.float64)
+    if len(values) and values[-1] - values[0] < TABLE_SPAN and np.all(values == np.floor(values)):
+        low = float(values[0])
+        table = level_index(np.arange(low, values[-1] + 1), levels)
+        return lambda w: levels_from_table(np.asarray(w, np.float64), low, table)
+    return lambda w: level_index(w, levels)
+
+
 READ_BLOCK = 1 << 22  # edges per block when a step streams the edge arrays
 
 
@@ -108,45 +126,67 @@ def build_graph(edge_files: list, n_nodes: int, levels_spec, out: Path, budget: 
 
 
 def prepare_graph(edge_files: list, n_nodes: int, levels_spec, out: Path, budget: int | None = None,
-                  pieces: int = 1) -> dict:
+                  pieces: int = 1, columns: bool = True) -> dict:
     """Everything of the CSR but its rows: the edge columns streamed into
     ``u``/``v``/``weight.npy`` file by file, the levels chosen from the distinct
     weights, each edge's level (``lev.npy``), the row pointers (``indptr.npy``), and
     empty ``nbr``/``nlev``/``eid.npy`` for :func:`csr_range` to fill.
 
-    Returns the counts and ``ranges``: consecutive row ranges, each holding at most
-    ``budget`` bytes of rows (``None``: no limit), and at least ``pieces`` of them
-    when the rows allow (about equal entries each).
+    The columns are :func:`graph_columns` ``"ends"`` and ``"weights"``; with
+    ``columns=False`` they are taken as written already (the stage runs the two
+    side by side first). Returns the counts and ``ranges``: consecutive row
+    ranges, each holding at most ``budget`` bytes of rows (``None``: no limit),
+    and at least ``pieces`` of them when the rows allow (about equal entries each).
+    """
+    t_cpu = time.thread_time()
+    if columns:
+        for part in ("ends", "weights"):
+            graph_columns(edge_files, n_nodes, levels_spec, out, part)
+    n_edges = len(load_npy(out / "u.npy", mmap=True))
+    indptr = load_npy(out / "indptr.npy", mmap=True)
+    nbr_dtype = np.dtype(np.int32 if n_nodes < 2**31 else np.int64)
+    ranges = _row_ranges(indptr, budget, nbr_dtype, pieces)
+    for name, dtype in (("nbr", nbr_dtype), ("nlev", np.int32), ("eid", np.int64)):
+        create_npy(out / f"{name}.npy", dtype, 2 * n_edges)
+    return {"edges": int(n_edges), "levels": len(load_npy(out / "levels.npy", mmap=True)),
+            "row_ranges": len(ranges), "ranges": ranges, "cpu": time.thread_time() - t_cpu}
+
+
+def graph_columns(edge_files: list, n_nodes: int, levels_spec, out: Path, part: str) -> dict:
+    """One of the two independent halves of :func:`prepare_graph`'s streaming.
+
+    ``"ends"``: ``u``/``v.npy`` and the row pointers ``indptr.npy`` (from the
+    degrees). ``"weights"``: ``weight.npy``, the levels (``levels.npy``, from the
+    distinct weights) and each edge's level ``lev.npy``. Both stream the edge
+    files one at a time.
     """
     t_cpu = time.thread_time()
     out.mkdir(parents=True, exist_ok=True)
     n_edges = sum(pq.read_metadata(f).num_rows for f in edge_files)
-    for col, dtype in (("u", np.int64), ("v", np.int64), ("weight", np.float64)):
+    cols = (("u", np.int64), ("v", np.int64)) if part == "ends" else (("weight", np.float64),)
+    for col, dtype in cols:
         save_npy_parts(out / f"{col}.npy", (pq.read_table(f, columns=[col]).column(0).to_numpy() for f in edge_files),
                        dtype, n_edges)
+    if part == "ends":
+        degree = np.zeros(n_nodes, np.int64)
+        for col in ("u", "v"):
+            for _, x in npy_blocks(out / f"{col}.npy", READ_BLOCK):
+                degree += np.bincount(x, minlength=n_nodes)
+        indptr = np.zeros(n_nodes + 1, np.int64)
+        np.cumsum(degree, out=indptr[1:])
+        save_npy(out / "indptr.npy", indptr)
+        return {"cpu": time.thread_time() - t_cpu}
     values, counts = np.empty(0, np.float64), np.empty(0, np.int64)
     for _, w in npy_blocks(out / "weight.npy", READ_BLOCK):
         bv, bc = np.unique(w, return_counts=True)
         values, inv = np.unique(np.concatenate([values, bv]), return_inverse=True)
         counts = np.bincount(inv, weights=np.concatenate([counts, bc]), minlength=len(values)).astype(np.int64)
     levels = levels_from_counts(values, counts, levels_spec)
-    save_npy_parts(out / "lev.npy", (level_index(w, levels) for _, w in npy_blocks(out / "weight.npy", READ_BLOCK)),
+    index = level_lookup(values, levels)
+    save_npy_parts(out / "lev.npy", (index(w) for _, w in npy_blocks(out / "weight.npy", READ_BLOCK)),
                    np.int32, n_edges)
-    degree = np.zeros(n_nodes, np.int64)
-    for col in ("u", "v"):
-        for _, x in npy_blocks(out / f"{col}.npy", READ_BLOCK):
-            degree += np.bincount(x, minlength=n_nodes)
-    indptr = np.zeros(n_nodes + 1, np.int64)
-    np.cumsum(degree, out=indptr[1:])
-    del degree
-    nbr_dtype = np.dtype(np.int32 if n_nodes < 2**31 else np.int64)
-    ranges = _row_ranges(indptr, budget, nbr_dtype, pieces)
-    for name, dtype in (("nbr", nbr_dtype), ("nlev", np.int32), ("eid", np.int64)):
-        create_npy(out / f"{name}.npy", dtype, 2 * n_edges)
-    save_npy(out / "indptr.npy", indptr)
     save_npy(out / "levels.npy", levels)
-    return {"edges": int(n_edges), "levels": int(len(levels)), "row_ranges": len(ranges), "ranges": ranges,
-            "cpu": time.thread_time() - t_cpu}
+    return {"cpu": time.thread_time() - t_cpu}
 
 
 def _row_ranges(indptr: np.ndarray, budget: int | None, nbr_dtype, pieces: int = 1) -> list[tuple[int, int]]:

@@ -55,10 +55,12 @@ def run(ctx: StageContext) -> dict:
 
     with ctx.substep("graph") as step:
         if not RunStore.unit_done(work, "graph"):
+            # the edge ends (and row pointers) and the weights (and levels) side by side, then the rows
+            cols = ctx.engine.map(_graph_columns, ["ends", "weights"], edge_files, n_nodes, p["levels"], gdir)
             info = ctx.engine.submit(parts.prepare_graph, edge_files, n_nodes, p["levels"], gdir, piece,
-                                     ctx.engine.nthreads()).result()
+                                     ctx.engine.nthreads(), False).result()
             done = ctx.engine.map(_csr_range, info.pop("ranges"), gdir)  # ranges of rows side by side
-            ctx.worker_cpu += info.pop("cpu", 0.0) + sum(d["cpu"] for d in done)
+            ctx.worker_cpu += info.pop("cpu", 0.0) + sum(d["cpu"] for d in done + cols)
             RunStore.unit_commit(work, "graph", [f"graph/{f}.npy" for f in parts.GRAPH_FILES + ("levels",)], info)
         info = RunStore.unit_info(work, "graph")
         step.count(edges=info["edges"], levels=info["levels"])
@@ -131,6 +133,10 @@ def run(ctx: StageContext) -> dict:
         "incidence_ranges": cinfo.get("incidence_ranges", 1),
         "size_histogram": {str(s): int(c) for s, c in enumerate(hist) if c},
     }
+
+
+def _graph_columns(part, edge_files, n_nodes, levels, gdir):
+    return parts.graph_columns(edge_files, n_nodes, levels, gdir, part)
 
 
 def _csr_range(rows, gdir):
