@@ -45,7 +45,7 @@ def test_csr_matches_scipy(graph):
     got = csr_from_edges(n, u, v, lev)
     _assert_same_csr(got, csr_from_edges_reference(n, u, v, lev))
     assert got[1].dtype == np.int32 and got[2].dtype == np.int32
-    assert got[0].dtype == np.int64 and got[3].dtype == np.int64
+    assert got[0].dtype == np.int64 and got[3].dtype == np.int32  # edge ids: int32 below 2**31 edges
 
 
 def test_csr_on_les_miserables_matches_scipy_and_networkx():

@@ -161,7 +161,7 @@ def _maximal_cliques_kernel(indptr, nbr, small_max):
     cnt = np.zeros(4, np.int64)
     pre = np.empty(1, np.int64)
     no_lev = np.empty(0, np.int32)
-    no_eid = np.empty(0, np.int64)
+    no_eid = np.empty(0, np.int32)
     x = 0
     while x < n:
         lo = indptr[x]
@@ -480,7 +480,7 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
     outB = np.empty(64, np.int64)
     links = np.empty(table_m * table_m if ranges else 0, np.int64)
     lmin = np.empty(1024 if ranges else 0, np.int32)
-    pairs = np.empty(4096 if ranges else 0, np.int64)
+    pairs = np.empty(4096 if ranges else 0, eid.dtype)
     n_pairs = np.int64(0)
     # the per-vertex path (first ends of at most local_max <= 64 neighbours): the
     # links among the neighbours of the current first end, built once for its edges
@@ -711,7 +711,9 @@ def sweep_candidates(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None,
     v = np.ascontiguousarray(v, np.int64)
     lev = np.ascontiguousarray(lev, np.int32)
     nlev = np.ascontiguousarray(nlev, np.int32)
-    eid = np.ascontiguousarray(eid, np.int64)
+    eid = np.ascontiguousarray(eid)
+    if eid.dtype not in (np.int32, np.int64):
+        eid = eid.astype(np.int64)
     if not (u.shape == v.shape == lev.shape
             and nlev.shape == nbr.shape == eid.shape):
         raise ValueError("u, v, lev (and nbr, nlev, eid) must have matching lengths")
@@ -736,7 +738,8 @@ def sweep_with_ranges(indptr, nbr, nlev, eid, u, v, lev, edge_lo=0, edge_hi=None
                       _local=_LOCAL_D):
     """:func:`sweep_candidates`, also returning each clique's :func:`level_min` and the
     edge ids of its member pairs as
-    :func:`cliquewise.kernels.incidence.candidate_pairs` gives them (int64).
+    :func:`cliquewise.kernels.incidence.candidate_pairs` gives them (in the dtype of
+    ``eid``).
 
     Returns ``(ptr, nodes, level_max, status, work_done, level_min, pair_edges)``;
     the last two are complete only when ``status`` is 0. They are worked out for

@@ -33,6 +33,7 @@ from numba.extending import intrinsic
 
 __all__ = [
     "csr_from_edges",
+    "eid_dtype",
     "csr_from_edges_reference",
     "csr_rows_scatter",
     "csr_rows_sort",
@@ -111,6 +112,7 @@ def csr_from_edges(n, u, v, lev, nbr_dtype=None):
         Level index of each edge (``>= 0``).
     nbr_dtype : numpy dtype, optional
         dtype of the neighbour array. Default int32 when ``n < 2**31``, else int64.
+        The edge ids (``eid``) are int32 when ``E < 2**31`` (:func:`eid_dtype`), else int64.
 
     Returns
     -------
@@ -119,7 +121,7 @@ def csr_from_edges(n, u, v, lev, nbr_dtype=None):
         Neighbours; row ``x`` is ``nbr[indptr[x]:indptr[x + 1]]``, ascending.
     nlev : ndarray of int32, shape (2E,)
         Level of the edge behind each entry.
-    eid : ndarray of int64, shape (2E,)
+    eid : ndarray of int32 or int64, shape (2E,)
         Position of that edge in ``u``/``v``/``lev``.
 
     Examples
@@ -149,9 +151,15 @@ def csr_from_edges(n, u, v, lev, nbr_dtype=None):
     indptr = np.empty(n + 1, np.int64)
     nbr = np.empty(m2, nbr_dtype)
     nlev = np.empty(m2, np.int32)
-    eid = np.empty(m2, np.int64)
+    eid = np.empty(m2, eid_dtype(u.shape[0]))
     _csr_fill(n, u, v, lev, indptr, nbr, nlev, eid)
     return indptr, nbr, nlev, eid
+
+
+def eid_dtype(n_edges):
+    """The dtype of edge ids: int32 below ``2**31`` edges (half the memory the
+    clique sweep reads), else int64."""
+    return np.dtype(np.int32 if n_edges < 2**31 else np.int64)
 
 
 @numba.njit(nogil=True, cache=True)

@@ -616,7 +616,7 @@ def solve_split(indptr, nbr, nlev, eid, l, e, S, ex, s, a, b, sm, inv, cbuf, pos
     cap = 4 * s
     hnbr = np.empty(cap, nbr.dtype)
     hlev = np.empty(cap, np.int32)
-    heid = np.empty(cap, np.int64)
+    heid = np.empty(cap, eid.dtype)
     pa_buf = np.empty(s, np.int64)
     pb_buf = np.empty(s, np.int64)
     nh = 0
@@ -633,7 +633,7 @@ def solve_split(indptr, nbr, nlev, eid, l, e, S, ex, s, a, b, sm, inv, cbuf, pos
             t2 = np.empty(cap, np.int32)
             t2[:nh] = hlev[:nh]
             hlev = t2
-            t3 = np.empty(cap, np.int64)
+            t3 = np.empty(cap, eid.dtype)
             t3[:nh] = heid[:nh]
             heid = t3
         for t in range(m):

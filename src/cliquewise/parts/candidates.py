@@ -27,7 +27,7 @@ import numpy as np
 import pyarrow.parquet as pq
 
 from cliquewise.kernels.cliques import sweep_with_ranges
-from cliquewise.kernels.graph import levels_from_table
+from cliquewise.kernels.graph import eid_dtype, levels_from_table
 from cliquewise.kernels.incidence import (
     candidate_pairs,
     count_buckets,
@@ -145,8 +145,8 @@ def prepare_graph(edge_files: list, n_nodes: int, levels_spec, out: Path, budget
     n_edges = len(load_npy(out / "u.npy", mmap=True))
     indptr = load_npy(out / "indptr.npy", mmap=True)
     nbr_dtype = np.dtype(np.int32 if n_nodes < 2**31 else np.int64)
-    ranges = _row_ranges(indptr, budget, nbr_dtype, pieces)
-    for name, dtype in (("nbr", nbr_dtype), ("nlev", np.int32), ("eid", np.int64)):
+    ranges = _row_ranges(indptr, budget, nbr_dtype, pieces, eid_dtype(n_edges))
+    for name, dtype in (("nbr", nbr_dtype), ("nlev", np.int32), ("eid", eid_dtype(n_edges))):
         create_npy(out / f"{name}.npy", dtype, 2 * n_edges)
     return {"edges": int(n_edges), "levels": len(load_npy(out / "levels.npy", mmap=True)),
             "row_ranges": len(ranges), "ranges": ranges, "cpu": time.thread_time() - t_cpu}
@@ -189,13 +189,14 @@ def graph_columns(edge_files: list, n_nodes: int, levels_spec, out: Path, part: 
     return {"cpu": time.thread_time() - t_cpu}
 
 
-def _row_ranges(indptr: np.ndarray, budget: int | None, nbr_dtype, pieces: int = 1) -> list[tuple[int, int]]:
+def _row_ranges(indptr: np.ndarray, budget: int | None, nbr_dtype, pieces: int = 1,
+                eid_type=np.dtype(np.int64)) -> list[tuple[int, int]]:
     """Consecutive row ranges whose entries fit in ``budget`` bytes (a row never
     splits), and no more than an equal share of ``pieces``."""
     n = len(indptr) - 1
     if n == 0:
         return []
-    per_entry = nbr_dtype.itemsize + 4 + 8  # nbr, nlev, eid
+    per_entry = nbr_dtype.itemsize + 4 + eid_type.itemsize  # nbr, nlev, eid
     share = -(-int(indptr[-1]) // max(1, int(pieces)))
     cap = max(1, share if budget is None else min(share, int(budget) // per_entry))
     ranges, a = [], 0
@@ -219,7 +220,7 @@ def csr_range(out: Path, a: int, b: int) -> dict:
     m = int(indptr[b]) - base
     nbr = np.empty(m, load_npy(out / "nbr.npy", mmap=True).dtype)
     nlev = np.empty(m, np.int32)
-    eid = np.empty(m, np.int64)
+    eid = np.empty(m, load_npy(out / "eid.npy", mmap=True).dtype)
     ptr = np.asarray(indptr[a:b + 1]) - base
     cursor = ptr[:-1].copy()
     blocks = zip(npy_blocks(out / "u.npy", READ_BLOCK), npy_blocks(out / "v.npy", READ_BLOCK),
@@ -263,7 +264,7 @@ def enumerate_unit(graph_dir: str, lo: int, hi: int, max_cliques: int, max_secon
     deadline = t0 + max_seconds
     at_node, at_level = -1, -1
     n_edges = len(g["u"])
-    pair_dtype = np.int64 if n_edges >= 2**31 else np.int32
+    pair_dtype = eid_dtype(n_edges)  # as the sweep writes them (the edge ids' dtype)
     for s, e in _blocks(Path(graph_dir), lo, hi, block):
         if trim and resident_bytes() > trim:
             drop_mapped_pages(g.values())
@@ -277,7 +278,7 @@ def enumerate_unit(graph_dir: str, lo: int, hi: int, max_cliques: int, max_secon
         k = len(ptr) - 1
         if k:  # with the level where each is still maximal, and its pairs' edge ids (worked out in the sweep)
             lmin_l.append(lmin)
-            pairs_l.append(pairs.astype(pair_dtype))
+            pairs_l.append(pairs.astype(pair_dtype, copy=False))
             ptrs.append(ptr[1:] + offset)
             nodes_l.append(nodes)
             lmax_l.append(lmax)
