@@ -248,3 +248,35 @@ def test_level_lookup_of_a_wide_integer_span_searches():
     levels = parts.choose_levels(w, "all")
     np.testing.assert_array_equal(parts.level_lookup(np.unique(w), levels)(w),
                                   np.searchsorted(levels, w, side="right") - 1)
+
+
+@settings(max_examples=60, deadline=None)
+@given(firsts=st.lists(st.integers(0, 30), min_size=1, max_size=200), extra=st.integers(0, 40),
+       per_unit=st.integers(1, 400))
+def test_units_of_equal_work_cover_the_edges_and_balance(firsts, extra, per_unit):
+    # plain arithmetic as the reference: the units tile [0, E), cut only between
+    # vertices, number ceil(E / per_unit) or fewer, and no unit's estimated work
+    # passes an equal share by more than one vertex's work (common practice for
+    # cutting a prefix sum, no source)
+    firsts = np.array(firsts, np.int64)
+    degree = firsts + extra
+    n_edges = int(firsts.sum())
+    units = parts.plan_units(n_edges, per_unit, firsts, degree)
+    if n_edges == 0:
+        assert units == []
+        return
+    assert units[0][0] == 0 and units[-1][1] == n_edges
+    assert all(a < b for a, b in units) and all(b == c for (_, b), (c, _) in zip(units, units[1:]))
+    assert len(units) <= -(-n_edges // per_unit)
+    ends = set(np.cumsum(firsts).tolist())
+    assert all(b in ends for _, b in units)
+    cost = firsts + parts.BUILD_COST * np.where(firsts > 0, degree.astype(float) ** 2, 0.0)
+    vertex_of_edge = np.repeat(np.arange(len(firsts)), firsts)
+    share = cost.sum() / -(-n_edges // per_unit)
+    for a, b in units:
+        vs = np.unique(vertex_of_edge[a:b])
+        assert cost[vs].sum() <= share + cost.max() + 1e-9
+    # without the counts: equal numbers of edges
+    plain = parts.plan_units(n_edges, per_unit)
+    assert plain[0][0] == 0 and plain[-1][1] == n_edges and len(plain) <= -(-n_edges // per_unit)
+    assert max(b - a for a, b in plain) <= per_unit

@@ -29,6 +29,11 @@ What lives here
     The sweep, also giving each clique's ``level_min`` and its pairs' edge ids,
     worked out per edge from the common neighbourhood just intersected (what the
     enumerate stage runs).
+The per-vertex path (``_local_build``, ``_local_edge``, ``_local_ranges_and_pairs``)
+    For a first end ``a`` of at most 64 neighbours, the links among them are merged
+    once for all of ``a``'s edges, and each edge reads its common neighbourhood,
+    the search's adjacency, its cliques' level ranges and pair ids from that table
+    (docs/method.md, section 3.2). Same arrays as the per-edge path.
 ``level_min`` / ``level_max_of``
     The lowest level at which a listed clique is still maximal (by sorted-row
     intersection from its member of smallest degree), and its smallest internal

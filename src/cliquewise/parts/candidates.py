@@ -155,8 +155,9 @@ def prepare_graph(edge_files: list, n_nodes: int, levels_spec, out: Path, budget
 def graph_columns(edge_files: list, n_nodes: int, levels_spec, out: Path, part: str) -> dict:
     """One of the two independent halves of :func:`prepare_graph`'s streaming.
 
-    ``"ends"``: ``u``/``v.npy`` and the row pointers ``indptr.npy`` (from the
-    degrees). ``"weights"``: ``weight.npy``, the levels (``levels.npy``, from the
+    ``"ends"``: ``u``/``v.npy``, the row pointers ``indptr.npy`` (from the
+    degrees) and ``firsts.npy``, the number of edges each vertex is the first
+    end of. ``"weights"``: ``weight.npy``, the levels (``levels.npy``, from the
     distinct weights) and each edge's level ``lev.npy``. Both stream the edge
     files one at a time.
     """
@@ -172,6 +173,8 @@ def graph_columns(edge_files: list, n_nodes: int, levels_spec, out: Path, part: 
         for col in ("u", "v"):
             for _, x in npy_blocks(out / f"{col}.npy", READ_BLOCK):
                 degree += np.bincount(x, minlength=n_nodes)
+            if col == "u":  # the number of edges each vertex is the first end of (for plan_units)
+                save_npy(out / "firsts.npy", degree)
         indptr = np.zeros(n_nodes + 1, np.int64)
         np.cumsum(degree, out=indptr[1:])
         save_npy(out / "indptr.npy", indptr)
@@ -565,7 +568,36 @@ def incidence_range(folder: Path, tags: list[str], out: Path, lo: int, hi: int, 
     return {"uncovered_edges": uncovered, "cpu": time.thread_time() - t_cpu}
 
 
-def plan_units(n_edges: int, edges_per_unit: int) -> list[tuple[int, int]]:
-    """Edge blocks ``[lo, hi)`` covering all edges."""
-    step = max(1, int(edges_per_unit))
-    return [(lo, min(n_edges, lo + step)) for lo in range(0, n_edges, step)]
+def plan_units(n_edges: int, edges_per_unit: int, firsts: np.ndarray | None = None,
+               degree: np.ndarray | None = None) -> list[tuple[int, int]]:
+    """Edge blocks ``[lo, hi)`` covering all edges, ``ceil(n_edges / edges_per_unit)`` of them.
+
+    Without ``firsts`` the blocks hold equal numbers of edges. With ``firsts`` (the
+    number of edges each vertex is the first end of, the edges sorted by first end)
+    and ``degree``, they hold about equal estimated work instead, cut between
+    vertices: the sweep's per-vertex path links a first end's neighbours once,
+    which costs about its squared degree whatever the number of its edges, so
+    blocks of vertices with few edges each cost more per edge
+    (:data:`BUILD_COST`, measured here).
+    """
+    n_units = max(1, -(-int(n_edges) // max(1, int(edges_per_unit))))
+    if firsts is None or n_units == 1:
+        step = -(-int(n_edges) // n_units) if n_edges else 1
+        return [(lo, min(n_edges, lo + step)) for lo in range(0, n_edges, step)]
+    firsts = np.asarray(firsts, np.int64)
+    degree = np.asarray(degree, np.int64)
+    cost = firsts + BUILD_COST * np.where(firsts > 0, degree.astype(np.float64) ** 2, 0.0)
+    csum = np.cumsum(cost)
+    ends = np.cumsum(firsts)  # the edges before the next vertex
+    cuts = np.searchsorted(csum, csum[-1] * np.arange(1, n_units) / n_units)
+    bounds = np.unique(np.concatenate([[0], ends[cuts], [n_edges]]))
+    return [(int(a), int(b)) for a, b in zip(bounds[:-1], bounds[1:])]
+
+
+def plan_graph_units(graph_dir: Path, n_edges: int, edges_per_unit: int) -> list[tuple[int, int]]:
+    """:func:`plan_units` from the graph files (``firsts.npy``, ``indptr.npy``)."""
+    degree = np.diff(load_npy(graph_dir / "indptr.npy", mmap=True))
+    return plan_units(n_edges, edges_per_unit, load_npy(graph_dir / "firsts.npy", mmap=True), degree)
+
+
+BUILD_COST = 0.01  # a first end's neighbour links cost about this many edges per squared degree (measured here)

@@ -61,14 +61,17 @@ def run(ctx: StageContext) -> dict:
                                      ctx.engine.nthreads(), False).result()
             done = ctx.engine.map(_csr_range, info.pop("ranges"), gdir)  # ranges of rows side by side
             ctx.worker_cpu += info.pop("cpu", 0.0) + sum(d["cpu"] for d in done + cols)
-            RunStore.unit_commit(work, "graph", [f"graph/{f}.npy" for f in parts.GRAPH_FILES + ("levels",)], info)
+            RunStore.unit_commit(work, "graph", [f"graph/{f}.npy" for f in parts.GRAPH_FILES + ("levels", "firsts")],
+                                 info)
         info = RunStore.unit_info(work, "graph")
         step.count(edges=info["edges"], levels=info["levels"])
     n_edges = info["edges"]
     # several units per thread so the last ones do not leave threads idle; the
     # candidates come out in edge order whatever the unit size
     per_unit = min(p["edges_per_unit"], max(20_000, -(-n_edges // (4 * ctx.engine.nthreads()))))
-    units = parts.plan_units(n_edges, per_unit)
+    # units of about equal work (see plan_units), from each vertex's degree and edge count (in a task:
+    # node-length arrays stay out of the driver)
+    units = ctx.engine.submit(parts.plan_graph_units, gdir, n_edges, per_unit).result()
     tags = [f"e{lo:012d}" for lo, _ in units]
 
     with ctx.substep("direct"):  # components that are single-level cliques need no search
