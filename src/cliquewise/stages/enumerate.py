@@ -103,9 +103,10 @@ def run(ctx: StageContext) -> dict:
     with ctx.substep("collect") as step:  # candidates in unit order, and the incidence by a counting sort
         # the tables and the incidence's edge ranges (one per engine thread, or smaller
         # under a memory limit) run side by side
-        plan = ctx.engine.submit(parts.plan_incidence, work / "cl", tags_all, work, n_edges, piece,
-                                 ctx.engine.nthreads()).result()
-        done = ctx.engine.map(_collect, ["tables"] + plan["ranges"], work / "cl", tags_all, work)
+        # the tables while the incidence's plan counts, then the incidence's ranges
+        tables, plan = ctx.engine.map(_collect, ["tables", ("plan", n_edges, piece, ctx.engine.nthreads())],
+                                      work / "cl", tags_all, work)
+        done = [tables] + ctx.engine.map(_collect, plan["ranges"], work / "cl", tags_all, work)
         cinfo = {**done[0], "incidences": plan["incidences"], "incidence_ranges": len(plan["ranges"]),
                  "uncovered_edges": sum(d["uncovered_edges"] for d in done[1:])}
         ctx.worker_cpu += sum(d.pop("cpu", 0.0) for d in done)
@@ -149,6 +150,8 @@ def _csr_range(rows, gdir):
 def _collect(item, folder, tags, out):
     if item == "tables":
         return parts.collect_tables(folder, tags, out)
+    if item[0] == "plan":
+        return parts.plan_incidence(folder, tags, out, *item[1:])
     return parts.incidence_range(folder, tags, out, *item)
 
 
