@@ -195,10 +195,17 @@ def graph_columns(edge_files: list, n_nodes: int, levels_spec, out: Path, part: 
 def _row_ranges(indptr: np.ndarray, budget: int | None, nbr_dtype, pieces: int = 1,
                 eid_type=np.dtype(np.int64)) -> list[tuple[int, int]]:
     """Consecutive row ranges whose entries fit in ``budget`` bytes (a row never
-    splits), and no more than an equal share of ``pieces``."""
+    splits), and no more than an equal share of ``pieces``. Without a budget,
+    ``pieces`` ranges cut at the rows nearest to equal shares."""
     n = len(indptr) - 1
     if n == 0:
         return []
+    total = int(indptr[-1])
+    if budget is None and total > 0:
+        k = max(1, int(pieces))
+        cuts = np.searchsorted(indptr, total * np.arange(1, k) / k)
+        bounds = np.unique(np.concatenate([[0], np.clip(cuts, 1, n), [n]])).tolist()
+        return [(int(a), int(b)) for a, b in zip(bounds[:-1], bounds[1:])]
     per_entry = nbr_dtype.itemsize + 4 + eid_type.itemsize  # nbr, nlev, eid
     share = -(-int(indptr[-1]) // max(1, int(pieces)))
     cap = max(1, share if budget is None else min(share, int(budget) // per_entry))
