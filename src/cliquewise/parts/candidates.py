@@ -31,6 +31,7 @@ from cliquewise.kernels.graph import eid_dtype, levels_from_table
 from cliquewise.kernels.incidence import (
     candidate_pairs,
     count_buckets,
+    count_rows,
     count_rows_in,
     scatter_rows_in,
     starts_from_counts,
@@ -511,11 +512,13 @@ def plan_incidence(folder: Path, tags: list[str], out: Path, n_edges: int, budge
     :func:`incidence_range` to fill range by range (side by side, in any order).
 
     One pass over the units' pairs counts them per bucket of :data:`INC_BUCKET`
-    edges. Ranges are whole buckets: each holds at most
-    ``budget`` bytes (``None``: no limit; a bucket larger than that is a range of
-    its own), and there are at least ``pieces`` of them when the buckets allow,
-    with about equal incidences. Returns ``{"ranges": [(lo, hi, start)], "incidences": n}``,
-    ``start`` being where the range's rows begin in ``inc_cand``.
+    edges; without a budget it counts them per edge instead, and writes the row
+    pointers ``inc_ptr`` here (so the ranges need not count again). Ranges are
+    whole buckets: each holds at most ``budget`` bytes (``None``: no limit; a
+    bucket larger than that is a range of its own), and there are at least
+    ``pieces`` of them when the buckets allow, with about equal incidences.
+    Returns ``{"ranges": [(lo, hi, start, counted)], "incidences": n}``, ``start``
+    being where the range's rows begin in ``inc_cand``.
     """
     out.mkdir(parents=True, exist_ok=True)
     n_buckets = max(1, -(-n_edges // INC_BUCKET))
@@ -523,15 +526,23 @@ def plan_incidence(folder: Path, tags: list[str], out: Path, n_edges: int, budge
     if INC_BUCKET != 1 << shift:
         raise ValueError("INC_BUCKET must be a power of two")
     per_bucket = np.zeros(n_buckets, np.int64)
-    whole = budget is None and pieces <= 1  # one range: no need to count per bucket
-    for pairs in _unit_arrays(folder, tags, "pairs"):
-        if whole:
-            per_bucket[0] += len(pairs)
-        else:
+    rows = None
+    if budget is None:  # no memory limit: count every edge's row here, and write the row pointers
+        rows = np.zeros(n_edges + 2, np.int64)
+        for pairs in _unit_arrays(folder, tags, "pairs"):
+            count_rows(pairs, rows)
+        starts_from_counts(rows, np.int64(n_edges))  # rows[e + 1]: where row e starts
+        edge_starts = rows[np.minimum(np.arange(n_buckets + 1) * INC_BUCKET, n_edges) + 1]
+        per_bucket = np.diff(edge_starts)
+    else:
+        for pairs in _unit_arrays(folder, tags, "pairs"):
             count_buckets(pairs, np.int64(shift), per_bucket)
     total = int(per_bucket.sum())
     n_cand = sum(len(load_npy(folder / f"{tag}.ptr.npy", mmap=True)) - 1 for tag in tags)
-    create_npy(out / "inc_ptr.npy", np.int64, n_edges + 1)
+    if rows is not None:
+        save_npy(out / "inc_ptr.npy", rows[1:])
+    else:
+        create_npy(out / "inc_ptr.npy", np.int64, n_edges + 1)
     create_npy(out / "inc_cand.npy", np.int32 if n_cand < 2**31 else np.int64, total)
     if n_edges == 0:
         return {"ranges": [], "incidences": total}
@@ -550,20 +561,27 @@ def plan_incidence(folder: Path, tags: list[str], out: Path, n_edges: int, budge
             c = int(np.searchsorted(csum, csum[b] + cap, side="right")) - 1
             b = min(n_buckets, max(c, b + 1))
             bounds.append(b)
-    ranges = [(b * INC_BUCKET, min(n_edges, c * INC_BUCKET), int(starts[b]))
+    counted = rows is not None
+    ranges = [(b * INC_BUCKET, min(n_edges, c * INC_BUCKET), int(starts[b]), counted)
               for b, c in zip(bounds[:-1], bounds[1:])]
     return {"ranges": ranges, "incidences": total}
 
 
-def incidence_range(folder: Path, tags: list[str], out: Path, lo: int, hi: int, start: int) -> dict:
+def incidence_range(folder: Path, tags: list[str], out: Path, lo: int, hi: int, start: int,
+                    counted: bool = False) -> dict:
     """Rows ``[lo, hi)`` of the edge -> candidate CSR (a counting sort of the units'
     pairs that fall in the range), written into the files :func:`plan_incidence`
-    made: ``inc_cand`` from ``start``, ``inc_ptr`` at ``lo + 1 .. hi``."""
+    made: ``inc_cand`` from ``start``, ``inc_ptr`` at ``lo + 1 .. hi``. When the
+    plan has ``counted`` the rows (and written ``inc_ptr``), their starts are read
+    from it instead of counted again."""
     t_cpu = time.thread_time()
     cnt = np.zeros(hi - lo + 2, np.int64)
-    for pairs in _unit_arrays(folder, tags, "pairs"):
-        count_rows_in(pairs, np.int64(lo), np.int64(hi), cnt)
-    starts_from_counts(cnt, np.int64(hi - lo))
+    if counted:
+        cnt[1:] = load_npy(out / "inc_ptr.npy", mmap=True)[lo:hi + 1] - start
+    else:
+        for pairs in _unit_arrays(folder, tags, "pairs"):
+            count_rows_in(pairs, np.int64(lo), np.int64(hi), cnt)
+        starts_from_counts(cnt, np.int64(hi - lo))
     inc_cand = np.empty(int(cnt[hi - lo + 1]), load_npy(out / "inc_cand.npy", mmap=True).dtype)
     k0 = 0
     for uptr, pairs in zip(_unit_arrays(folder, tags, "ptr"), _unit_arrays(folder, tags, "pairs")):
@@ -571,7 +589,8 @@ def incidence_range(folder: Path, tags: list[str], out: Path, lo: int, hi: int, 
         k0 += len(uptr) - 1
     uncovered = int(np.count_nonzero(np.diff(cnt[: hi - lo + 1]) == 0))
     write_npy_at(out / "inc_cand.npy", start, inc_cand)
-    write_npy_at(out / "inc_ptr.npy", lo + 1, cnt[1: hi - lo + 1] + start)  # end of each row = start of the next
+    if not counted:
+        write_npy_at(out / "inc_ptr.npy", lo + 1, cnt[1: hi - lo + 1] + start)  # end of each row = start of the next
     return {"uncovered_edges": uncovered, "cpu": time.thread_time() - t_cpu}
 
 
