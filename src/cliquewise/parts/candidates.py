@@ -626,4 +626,4 @@ def plan_graph_units(graph_dir: Path, n_edges: int, edges_per_unit: int) -> list
     return plan_units(n_edges, edges_per_unit, load_npy(graph_dir / "firsts.npy", mmap=True), degree)
 
 
-BUILD_COST = 0.01  # a first end's neighbour links cost about this many edges per squared degree (measured here)
+BUILD_COST = 0.01  # a first end's neighbour links cost about this many edges per squared degree (fitted to the unit times of the planted benchmark export)
