@@ -379,7 +379,7 @@ def _local_edge(nbr, nlev, eid, ia, d, ladj, lpos, lglob, jb, a, b, l, e, pre, s
 
 @_leaf
 def _local_ranges_and_pairs(nbr, nlev, eid, ia, d, ladj, lpos, jb, a, b, e, ptr, nodes, K0, K1, lmin, pairs,
-                            w, tix, rout):
+                            w, tix, rout, ident):
     """:func:`_edge_ranges_and_pairs` on the per-vertex path: the members' links
     are read off the links among the neighbours of ``a`` (every member other than
     ``a`` and ``b``, and every vertex that could extend a clique, is one of them
@@ -387,7 +387,6 @@ def _local_ranges_and_pairs(nbr, nlev, eid, ia, d, ladj, lpos, jb, a, b, e, ptr,
     one = np.uint64(1)
     T = ladj[jb]
     rb = jb * d
-    bad = False
     for k in range(K0, K1):
         lo = ptr[k]
         hi = ptr[k + 1]
@@ -415,38 +414,8 @@ def _local_ranges_and_pairs(nbr, nlev, eid, ia, d, ladj, lpos, jb, a, b, e, ptr,
                     val = min(val, np.int64(nlev[lpos[h * d + x]]))
             best = max(best, val)
         lmin[k] = best + 1
-        s = hi - lo
-        for i in range(s - 1):
-            ti = tix[i]
-            if ti < 0:  # a or b
-                from_a = nodes[lo + i] == a
-                for j in range(i + 1, s):
-                    tj = tix[j]
-                    if tj < 0:
-                        pe = e
-                    elif from_a:
-                        pe = eid[ia + tj]
-                    else:
-                        pe = eid[lpos[rb + tj]]
-                    pairs[w] = pe
-                    w += 1
-            else:
-                row = ladj[ti]
-                ri = ti * d
-                ea = eid[ia + ti]
-                eb = eid[lpos[rb + ti]]
-                for j in range(i + 1, s):
-                    tj = tix[j]
-                    if tj < 0:
-                        pe = ea if nodes[lo + j] == a else eb
-                    else:
-                        linked = ((row >> np.uint64(tj)) & one) != np.uint64(0)
-                        bad |= not linked
-                        pe = eid[lpos[ri + tj] if linked else ia]  # (a stale entry is never read)
-                    pairs[w] = pe
-                    w += 1
-        if bad:
-            raise ValueError("sweep: a listed clique has a member pair that is not an edge")
+        w = _pairs_from_links(eid, nodes, lo, hi, a, e, tix, ident, _I0, ia, lpos, rb, _I0, ladj, ident, lpos, d,
+                              pairs, w)
     return w
 
 
@@ -495,6 +464,7 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
     ladj = np.empty(64, np.uint64)
     lpos = np.empty(64 * 64, np.int64)
     lglob = np.empty(64, np.int64)
+    ident = np.arange(64)  # on the per-vertex path a table index is its own row (_pairs_from_links)
     rout = np.empty(ptr.shape[0], np.uint64)  # each clique's members as local ids (per-vertex path)
     e = edge_lo
     while e < edge_hi:
@@ -638,7 +608,7 @@ def _sweep_kernel(indptr, nbr, nlev, eid, u, v, lev, edge_lo, edge_hi,
                 if local:
                     n_pairs = _local_ranges_and_pairs(nbr, nlev, eid, np.int64(alo), d, ladj, lpos, jb, a, b,
                                                       np.int64(e), ptr, nodes, K0, K1, lmin, pairs, n_pairs, tpos,
-                                                      rout)
+                                                      rout, ident)
                 elif m <= table_m:  # the members' links from one pass over each member's row
                     for t in range(m):
                         tv[t] = nbr[posA[t]]
@@ -878,6 +848,56 @@ def _best_survivor(indptr, nbr, nlev, nodes, lo, hi, skip1, skip2, xs, ms, na):
 
 
 @_leaf
+def _pairs_from_links(eid, nodes, lo, hi, a, e, tix, posa, ai, av, posb, bi, bv, rowbits, rowof, linkpos, stride,
+                      pairs, w):
+    """The edge ids of the member pairs of clique ``nodes[lo:hi]``, listed from edge
+    ``e = (a, b)``, written at ``pairs[w:]``; returns ``w`` + pairs written.
+
+    ``tix[i]`` is member ``i``'s index in the edge's table (-1 for ``a`` and
+    ``b``). For table index ``t``, the link to ``a`` is at CSR position
+    ``posa[ai + t] + av``, the link to ``b`` at ``posb[bi + t] + bv``; ``r = rowof[t]``
+    is its row, ``rowbits[r]`` the bitset of its links and ``linkpos[r * stride +
+    u]`` the position of its link to index ``u`` (other entries are stale and
+    never read). Both table paths of the sweep use it."""
+    one = np.uint64(1)
+    bad = False
+    s = hi - lo
+    for i in range(s - 1):
+        ti = tix[i]
+        if ti < 0:  # a or b: its pairs' positions are in posa or posb
+            from_a = nodes[lo + i] == a
+            for j in range(i + 1, s):
+                tj = tix[j]
+                if tj < 0:
+                    pe = e
+                elif from_a:
+                    pe = eid[posa[ai + tj] + av]
+                else:
+                    pe = eid[posb[bi + tj] + bv]
+                pairs[w] = pe
+                w += 1
+        else:
+            r = rowof[ti]
+            rr = r * stride
+            row = rowbits[r]
+            ea = eid[posa[ai + ti] + av]
+            eb = eid[posb[bi + ti] + bv]
+            for j in range(i + 1, s):
+                tj = tix[j]
+                if tj < 0:
+                    pe = ea if nodes[lo + j] == a else eb
+                else:
+                    linked = ((row >> np.uint64(tj)) & one) != np.uint64(0)
+                    bad |= not linked
+                    pe = eid[linkpos[rr + tj] if linked else posa[ai + ti] + av]  # (a stale entry is never read)
+                pairs[w] = pe
+                w += 1
+    if bad:
+        raise ValueError("sweep: a listed clique has a member pair that is not an edge")
+    return w
+
+
+@_leaf
 def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, nodes, K0, K1, lmin,
                            pairs, w, xs, tix, tv, slot, adj, outA, outB, links):
     """``level_min`` and the member pairs' edge ids of cliques ``K0 .. K1 - 1``, all
@@ -907,7 +927,6 @@ def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, 
     one = np.uint64(1)
     everyone = np.uint64(0xFFFFFFFFFFFFFFFF) if m == 64 else (one << np.uint64(m)) - one
     nrow = np.int64(0)
-    bad = False
     for k in range(K0, K1):
         lo = ptr[k]
         hi = ptr[k + 1]
@@ -953,33 +972,8 @@ def _edge_ranges_and_pairs(indptr, nbr, nlev, eid, a, b, e, m, posA, posB, ptr, 
                 val = min(val, np.int64(nlev[links[outA[r] * m + x]]))
             best = max(best, val)
         lmin[k] = best + 1
-        s = hi - lo
-        for i in range(s - 1):
-            ti = tix[i]
-            if ti < 0:  # a or b: its pairs' positions are in posA or posB
-                pos = posA if nodes[lo + i] == a else posB
-                for j in range(i + 1, s):
-                    tj = tix[j]
-                    pairs[w] = e if tj < 0 else eid[pos[tj]]
-                    w += 1
-            else:
-                r = slot[ti]
-                rb = r * m
-                row = adj[r]
-                ea = eid[posA[ti]]
-                eb = eid[posB[ti]]
-                for j in range(i + 1, s):
-                    tj = tix[j]
-                    if tj < 0:
-                        pe = ea if nodes[lo + j] == a else eb
-                    else:
-                        linked = ((row >> np.uint64(tj)) & one) != np.uint64(0)
-                        bad |= not linked
-                        pe = eid[links[rb + tj] if linked else 0]  # (a stale entry is never read)
-                    pairs[w] = pe
-                    w += 1
-        if bad:
-            raise ValueError("sweep: a listed clique has a member pair that is not an edge")
+        w = _pairs_from_links(eid, nodes, lo, hi, a, e, tix, posA, _I0, _I0, posB, _I0, _I0, adj, slot, links, m,
+                              pairs, w)
     return w
 
 
